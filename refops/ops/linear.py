@@ -1,0 +1,2 @@
+"""Oracles of the linear family (being written)."""
+__all__: list[str] = []

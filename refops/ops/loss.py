@@ -1,0 +1,2 @@
+"""Oracles of the loss family (being written)."""
+__all__: list[str] = []
