@@ -178,12 +178,13 @@ def round_to(x: np.ndarray, fmt: Any) -> np.ndarray:
     half = np.uint64(1) << (drop - np.uint64(1))
     round_up = (remainder > half) | ((remainder == half) & ((kept & np.uint64(1)) == 1))
     kept = kept + round_up.astype(np.uint64)
-    magnitude = np.ldexp(kept.astype(np.float64), (exponent - 52 + drop.astype(np.int64)))
+    with np.errstate(over="ignore"):                 # infinities carry into 2**1024
+        magnitude = np.ldexp(kept.astype(np.float64), exponent - 52 + drop.astype(np.int64))
     magnitude = np.where(biased == 0, 0.0, magnitude)
     overflow_value = fmt.max if fmt.saturates else np.inf
     magnitude = np.where(magnitude > fmt.max, overflow_value, magnitude)
     result = np.copysign(magnitude, x)
-    return np.where(np.isnan(x), np.nan, result).reshape(x.shape)
+    return np.where(np.isnan(x), x, result).reshape(x.shape)
 
 
 def _binade_exponent(x: np.ndarray, fmt: Format) -> np.ndarray:
