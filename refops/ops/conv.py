@@ -129,25 +129,30 @@ def _correlate(x: np.ndarray, w: np.ndarray, geo: _Geometry) -> np.ndarray:
     out = np.empty((batch, w.shape[0]) + geo.out)
     wg = _grouped(w, geo.groups)
     for part in _chunks(batch, geo.per_sample_bytes(channels, w.shape[0])):
-        cols = _im2col(x[part], geo)
-        target = out[part].reshape(cols.shape[0], geo.groups, wg.shape[1], cols.shape[-1])
-        np.matmul(wg, cols, out=target)
+        # Each chunk's im2col block is freed before the next one is made.
+        target = out[part].reshape(-1, geo.groups, wg.shape[1], math.prod(geo.out))
+        np.matmul(wg, _im2col(x[part], geo), out=target)
     return out
 
 
 def _correlate_adjoint(g: np.ndarray, w: np.ndarray, geo: _Geometry) -> np.ndarray:
     """The adjoint of :func:`_correlate` in ``x``: transposed-weight GEMM, fold, unpad."""
-    n = len(geo.kernel)
     batch, channels = g.shape[0], geo.groups * w.shape[1]
     result = np.empty((batch, channels) + geo.spatial)
     wt = _grouped(w, geo.groups).transpose(0, 2, 1)
-    order = (0, 1, *range(2 + n, 2 + 2 * n), *range(2, 2 + n))
     for part in _chunks(batch, geo.per_sample_bytes(channels, w.shape[0])):
-        gc = g[part].reshape(-1, geo.groups, wt.shape[2], math.prod(geo.out))
-        cols = np.matmul(wt, gc).reshape((gc.shape[0], channels) + geo.kernel + geo.out)
-        folded = _window.fold(cols.transpose(order), geo.padded, geo.stride, geo.dilation)
-        result[part] = _window.unpad(folded, geo.pairs, geo.mode)
+        result[part] = _adjoint_chunk(g[part], wt, geo)
     return result
+
+
+def _adjoint_chunk(g: np.ndarray, wt: np.ndarray, geo: _Geometry) -> np.ndarray:
+    n = len(geo.kernel)
+    gc = g.reshape(g.shape[0], geo.groups, wt.shape[2], math.prod(geo.out))
+    cols = np.matmul(wt, gc).reshape((g.shape[0], geo.groups * wt.shape[1] // math.prod(geo.kernel))
+                                     + geo.kernel + geo.out)
+    order = (0, 1, *range(2 + n, 2 + 2 * n), *range(2, 2 + n))
+    folded = _window.fold(cols.transpose(order), geo.padded, geo.stride, geo.dilation)
+    return _window.unpad(folded, geo.pairs, geo.mode)
 
 
 def _weight_gradient(x: np.ndarray, g: np.ndarray, geo: _Geometry) -> np.ndarray:
@@ -157,10 +162,14 @@ def _weight_gradient(x: np.ndarray, g: np.ndarray, geo: _Geometry) -> np.ndarray
     total = np.zeros((geo.groups, out_channels // geo.groups,
                       channels // geo.groups * math.prod(geo.kernel)))
     for part in _chunks(batch, geo.per_sample_bytes(channels, out_channels)):
-        cols = _im2col(x[part], geo)
-        gc = g[part].reshape(cols.shape[0], geo.groups, -1, cols.shape[-1])
-        total += np.matmul(gc, cols.transpose(0, 1, 3, 2)).sum(axis=0)
+        total += _weight_chunk(x[part], g[part], geo)
     return total.reshape((out_channels, channels // geo.groups) + geo.kernel)
+
+
+def _weight_chunk(x: np.ndarray, g: np.ndarray, geo: _Geometry) -> np.ndarray:
+    cols = _im2col(x, geo)
+    gc = g.reshape(cols.shape[0], geo.groups, -1, cols.shape[-1])
+    return np.matmul(gc, cols.transpose(0, 1, 3, 2)).sum(axis=0)
 
 
 def _conv_layer(geo: _Geometry) -> BilinearLayer:
@@ -196,9 +205,9 @@ def _check_groups(groups: int, channels: dict[str, int]) -> None:
             _checks.fail("groups", groups, f"must divide {what} = {count}")
 
 
-def _check_bias(bias, channels: int) -> None:
+def _check_bias(bias, channels: int, source: str) -> None:
     if bias is not None:
-        _checks.check_shape("bias", bias, (channels,), "(C_out,)")
+        _checks.check_shape("bias", bias, (channels,), f"C_out = {source}")
 
 
 def _check_padding_limits(pairs, spatial, mode: str) -> None:
@@ -233,7 +242,7 @@ def _validate_conv(arrays: dict, params: dict, *, rank: int) -> dict:
     if w.shape[1] != x.shape[1] // groups:
         _checks.fail("weight", w, f"weight.shape[1]={w.shape[1]} must equal input.shape[1] // groups "
                      f"= {x.shape[1]} // {groups} = {x.shape[1] // groups}")
-    _check_bias(bias, w.shape[0])
+    _check_bias(bias, w.shape[0], "weight.shape[0]")
     _check_padding_limits(pairs, x.shape[2:], mode)
     normal = dict(stride=stride, padding=pairs, dilation=dilation, groups=groups, padding_mode=mode)
     _check_kernel_fits(w, _conv_geometry(x.shape, w.shape, **normal))
@@ -260,7 +269,7 @@ def _validate_transpose(arrays: dict, params: dict, *, rank: int) -> dict:
         _checks.fail("weight", w, f"weight.shape[0]={w.shape[0]} must equal input.shape[1] "
                      f"(C_in) = {x.shape[1]}")
     _check_groups(groups, {"input.shape[1] (C_in)": x.shape[1]})
-    _check_bias(bias, w.shape[1] * groups)
+    _check_bias(bias, w.shape[1] * groups, "groups * weight.shape[1]")
     normal = dict(stride=stride, padding=pairs, output_padding=output_padding, groups=groups,
                   dilation=dilation)
     geo = _transpose_geometry(x.shape, w.shape, **normal)
