@@ -80,3 +80,27 @@ class RandomDraw:
     def unused_pins(self) -> list[str]:
         """Pinned names that the space never asked for (a typo, or a parameter of another op)."""
         return sorted(set(self.pins) - set(self.drawn))
+
+
+def plain_arrays(op: Any, config: Any, rng: np.random.Generator) -> tuple[tuple, dict]:
+    """Standard-normal arrays for a drawn config: ``(positional arrays, keyword params)``.
+
+    Arrays named in ``config.shapes`` that are keyword parameters of the op (batch_norm's running
+    statistics) go into the params; ``config.bounds`` restricts values (integer arrays draw
+    ``low <= v < high``, float arrays uniformly in ``[low, high]``).
+    """
+    values = {}
+    for name, shape in config.shapes.items():
+        if shape is None:
+            values[name] = None
+        elif name in config.bounds:
+            low, high = config.bounds[name]
+            if name in op.integer_arrays:
+                values[name] = rng.integers(low, high, size=shape)
+            else:
+                values[name] = rng.uniform(low, high, size=shape)
+        else:
+            values[name] = rng.standard_normal(shape)
+    arrays = tuple(values.get(name) for name in op.arrays)
+    params = {**config.params, **{k: v for k, v in values.items() if k in op.defaults}}
+    return arrays, params
