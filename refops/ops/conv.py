@@ -29,7 +29,7 @@ from . import _checks, _window
 from ._registry import CaseConfig, register
 from .linear import BilinearLayer
 
-__all__ = ["conv1d", "conv2d", "conv3d", "conv_transpose2d", "set_memory_limit"]
+__all__ = ["conv1d", "conv2d", "conv3d", "conv_transpose2d", "get_memory_limit", "set_memory_limit"]
 
 _memory_limit = 256 * 2 ** 20
 
@@ -44,6 +44,11 @@ def set_memory_limit(nbytes: int) -> int:
     previous = _memory_limit
     _memory_limit = _checks.as_int("nbytes", nbytes, min_value=1)
     return previous
+
+
+def get_memory_limit() -> int:
+    """The current scratch-memory bound (bytes) of one convolution map."""
+    return _memory_limit
 
 
 # ---------------------------------------------------------------------------------------------

@@ -40,11 +40,12 @@ class BilinearLayer:
     input_accumulate: str = "wide"
 
     def _with_bias(self, y: np.ndarray, bias: np.ndarray | None) -> np.ndarray:
-        if bias is None:
-            return y
-        shape = [1] * y.ndim
-        shape[self.channel_axis] = bias.size
-        return y + bias.reshape(shape)
+        """Add the bias in place: ``y`` is the forward map's fresh result (no second output)."""
+        if bias is not None:
+            shape = [1] * y.ndim
+            shape[self.channel_axis] = bias.size
+            y += bias.reshape(shape)
+        return y
 
     def bias_gradient(self, g: np.ndarray) -> np.ndarray:
         """Sum of the cotangent over every axis but the channel axis."""

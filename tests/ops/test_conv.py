@@ -258,9 +258,10 @@ def test_scratch_memory_stays_within_the_bound_at_large_batch(limit):
     # exist: the op's float64 copies of its arguments and its results.
     rng = np.random.default_rng(0)
     x, w = rng.standard_normal((256, 4, 16, 16)), rng.standard_normal((8, 4, 3, 3))
-    g = rng.standard_normal((256, 8, 16, 16))
-    runs = {"forward": (lambda: ops.conv2d(x, w, padding=1), x.nbytes + w.nbytes + g.nbytes),
-            "vjp": (lambda: ops.conv2d.vjp(g, x, w, padding=1), 2 * (x.nbytes + w.nbytes) + g.nbytes)}
+    b, g = rng.standard_normal(8), rng.standard_normal((256, 8, 16, 16))
+    args = x.nbytes + w.nbytes + b.nbytes
+    runs = {"forward": (lambda: ops.conv2d(x, w, b, padding=1), args + g.nbytes),
+            "vjp": (lambda: ops.conv2d.vjp(g, x, w, b, padding=1), 2 * args + g.nbytes)}
     previous = ops.set_memory_limit(limit)
     try:
         for name, (run, needed) in runs.items():
