@@ -175,6 +175,14 @@ def value_arrays(shape: int | Sequence[int], *, family: str = "normal", format: 
     -------
     A strategy of float64 arrays of exactly ``shape``.
     """
+    make = _array_maker(shape, family=family, format=format, min_value=min_value,
+                        max_value=max_value, points=points)
+    return _SEED.map(lambda seed: make(np.random.default_rng(seed)))
+
+
+def _array_maker(shape: Any, *, family: Any, format: Any, min_value: Any, max_value: Any,
+                 points: Any) -> Callable[[np.random.Generator], np.ndarray]:
+    """Validate the arguments of :func:`value_arrays`; return ``make(rng) -> array``."""
     shape = _check_shape(shape)
     family = _check_family(family)
     fmt = _check_format(format)
@@ -182,8 +190,7 @@ def value_arrays(shape: int | Sequence[int], *, family: str = "normal", format: 
     points = _check_points(points, family, low, high)
     _check_family_fits(family, low, high, fmt)
     generate = _GENERATORS[family]
-    return _SEED.map(lambda seed: _finish(generate(np.random.default_rng(seed), shape, fmt,
-                                                   low, high, points), fmt, low, high))
+    return lambda rng: _finish(generate(rng, shape, fmt, low, high, points), fmt, low, high)
 
 
 def kink_points(op: str | Op, params: Mapping[str, Any] | None = None) -> tuple[float, ...]:
@@ -296,8 +303,8 @@ class Case:
     cotangent: np.ndarray
 
     def __repr__(self) -> str:
-        shapes = ", ".join(f"{name}={'None' if a is None else tuple(a.shape)}"
-                           for name, a in zip(ops.get(self.op).arrays, self.arrays))
+        shapes = ", ".join(f"{name}={'None' if shape is None else tuple(shape)}"
+                           for name, shape in self.config.shapes.items())
         return (f"Case({self.op}, family={self.family!r}, format={self.format!r}, "
                 f"drawn={self.config.drawn!r}, {shapes})")
 
@@ -339,37 +346,43 @@ def _cases(draw, op: Op, pins: dict, max_spatial: int | None, fmt: Format,
            families: tuple[str, ...]) -> Case:
     config = draw(_configs(op, pins, max_spatial))
     family = draw(st.sampled_from(families))
-    values = _case_arrays(draw, op, config, family, fmt)
+    seed = draw(_SEED)
+    values = _case_arrays(seed, op, config, family, fmt)
     arrays = tuple(values.get(name) for name in op.arrays)
     params = {**config.params, **{k: v for k, v in values.items() if k in op.defaults}}
     out_shape = op.output_shape(*arrays, **params)
-    cotangent = draw(value_arrays(out_shape, format=fmt))
+    cotangent = _array_maker(out_shape, family="normal", format=fmt, min_value=None,
+                             max_value=None, points=None)(_stream(seed, len(values)))
     return Case(op=op.name, config=config, family=family, format=fmt.name, arrays=arrays,
                 params=params, cotangent=cotangent)
 
 
-def _case_arrays(draw, op: Op, config: CaseConfig, family: str, fmt: Format) -> dict:
+def _stream(seed: int, index: int) -> np.random.Generator:
+    """An independent generator per array of a case (one seed, so one shrinkable draw)."""
+    return np.random.default_rng([seed, index])
+
+
+def _case_arrays(seed: int, op: Op, config: CaseConfig, family: str, fmt: Format) -> dict:
     """Every array of ``config.shapes`` by name (``None`` where the shape is ``None``)."""
     lead = _leading_array(op, config)
     points = kink_points(op, config.params) if family == "kinks" else None
+    names = [*(n for n in op.arrays if n in config.shapes),
+             *(n for n in config.shapes if n not in op.arrays)]
     values = {}
-    for name in [*(n for n in op.arrays if n in config.shapes),
-                 *(n for n in config.shapes if n not in op.arrays)]:
-        shape, bounds = config.shapes[name], config.bounds.get(name)
+    for index, name in enumerate(names):
+        shape, bounds, rng = config.shapes[name], config.bounds.get(name), _stream(seed, index)
         if shape is None:
             values[name] = None
         elif name in op.integer_arrays:
-            values[name] = draw(_class_indices(op, name, shape, bounds))
-        elif bounds is not None:
-            values[name] = draw(value_arrays(shape, format=fmt, min_value=bounds[0],
-                                             max_value=bounds[1]))
-        elif name == lead:
-            values[name] = draw(value_arrays(shape, family=family, format=fmt, points=points))
-        elif family == "cancellation" and lead in values and tuple(shape) == values[lead].shape:
-            values[name] = draw(_SEED.map(lambda seed: round_to(values[lead] + _few_ulps(
-                np.random.default_rng(seed), values[lead], fmt), fmt)))
+            values[name] = _class_indices(rng, op, name, shape, bounds)
+        elif family == "cancellation" and lead in values and tuple(shape) == values[lead].shape \
+                and bounds is None:
+            values[name] = round_to(values[lead] + _few_ulps(rng, values[lead], fmt), fmt)
         else:
-            values[name] = draw(value_arrays(shape, format=fmt))
+            low, high = (None, None) if bounds is None else bounds
+            array_family = family if name == lead else "normal"
+            values[name] = _array_maker(shape, family=array_family, format=fmt, min_value=low,
+                                        max_value=high, points=points if name == lead else None)(rng)
     return values
 
 
@@ -382,12 +395,12 @@ def _leading_array(op: Op, config: CaseConfig) -> str | None:
     return None
 
 
-def _class_indices(op: Op, name: str, shape: tuple, bounds: Any) -> st.SearchStrategy[np.ndarray]:
+def _class_indices(rng: np.random.Generator, op: Op, name: str, shape: tuple,
+                   bounds: Any) -> np.ndarray:
     if bounds is None:
         raise ValueError(f"{op.name}: the configuration gives no bounds for the integer array "
                          f"{name!r} (class indices need (low, high))")
-    low, high = bounds
-    return _SEED.map(lambda seed: np.random.default_rng(seed).integers(low, high, size=shape))
+    return rng.integers(bounds[0], bounds[1], size=shape)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -416,18 +429,17 @@ def _check_mapping(name: str, value: Any) -> dict:
 
 def _check_pins(value: Any, op: Op) -> dict:
     pins = _check_mapping("pins", value)
-    unknown = sorted(set(pins) - _drawn_names(op.name))
+    unknown = sorted(set(pins) - _drawn_names(op.space))
     if unknown:
         raise PinError(f"pins={_checks.describe(value)}: {unknown[0]!r} is not drawn by the "
-                       f"{op.name} space; it draws: {', '.join(sorted(_drawn_names(op.name)))}")
+                       f"{op.name} space; it draws: {', '.join(sorted(_drawn_names(op.space)))}")
     op.space(RandomDraw(np.random.default_rng(0), pins))   # a pin the space refuses fails here
     return pins
 
 
 @lru_cache(maxsize=None)
-def _drawn_names(name: str) -> frozenset[str]:
-    """Every name the op's space asks for, learnt from seeded random draws."""
-    space = ops.get(name).space
+def _drawn_names(space: Callable) -> frozenset[str]:
+    """Every name a configuration space asks for, learnt from seeded random draws."""
     found: set[str] = set()
     for seed in range(_PIN_PROBES):
         draw = RandomDraw(np.random.default_rng(seed))

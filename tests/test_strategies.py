@@ -7,6 +7,7 @@ from hypothesis import strategies as st
 
 import refops.ops as ops
 from refops import strategies
+from refops.ops import CaseConfig, Kink, Op
 from refops.ops._space import PinError, RandomDraw
 from refops.strategies import FAMILIES, HypothesisDraw, cases, configs, kink_points, value_arrays
 
@@ -296,6 +297,97 @@ def test_kink_points_of_an_op_without_pointwise_kinks_are_empty():
 def test_families_without_kinks_are_drawn_for_ops_without_kink_points():
     seen = {case.family for case in examples(cases("linear"), 150)}
     assert seen == set(FAMILIES) - {"kinks"}
+
+
+# ---------------------------------------------------------------------------------------------
+# cases for ops with kinks, class indices, keyword arrays and paired arrays; two small ops built
+# here (not registered) so that every path is exercised whichever ops are registered
+
+def _no_terms(g, *arrays, **params):
+    return {}
+
+
+def _clamp_space(draw):
+    min_val = draw.choice("min_val", (-1.0, -2.0))
+    length = draw.integer("length", 1, 6)
+    return CaseConfig(layer={"min_val": min_val}, params={"min_val": min_val},
+                      shapes={"input": (length,)}, bounds={},
+                      drawn={"min_val": min_val, "length": length})
+
+
+def clamp_values(input, *, min_val=-1.0, max_val=1.0):
+    """Clamp to [min_val, max_val]."""
+    return np.clip(input, min_val, max_val)
+
+
+CLAMP = Op(clamp_values, vjp=lambda g, x, **p: {"input": g * ((x > p["min_val"]) & (x < p["max_val"]))},
+           validate=lambda arrays, params: params, space=_clamp_space, error_terms=_no_terms,
+           kinks=(Kink("the clamp bounds", "0", distance=lambda arrays, params: {},
+                       points=lambda params: (params["min_val"], params["max_val"])),))
+
+
+def _scored_space(draw):
+    rows, classes = draw.integer("batch", 1, 4), draw.integer("classes", 2, 5)
+    return CaseConfig(layer={}, params={}, shapes={"input": (rows, classes),
+                                                   "target": (rows, classes), "labels": (rows,),
+                                                   "running_var": (classes,)},
+                      bounds={"labels": (0, classes), "running_var": (0.5, 2.0)},
+                      drawn={"batch": rows, "classes": classes})
+
+
+def scored(input, target, labels, *, running_var=None):
+    """A loss-like op: paired float arrays, class indices and a keyword array."""
+    return np.asarray(np.sum((input - target) ** 2 / running_var))
+
+
+SCORED = Op(scored, vjp=lambda g, *a, **p: {}, validate=lambda arrays, params: params,
+            space=_scored_space, error_terms=_no_terms, output_shape=lambda arrays, params: (),
+            integer_arrays=("labels",))
+OPS_WITH_KINK_POINTS = [CLAMP] + [ops.get(n) for n in ops.names() if kink_points(n)]
+
+
+@pytest.mark.parametrize("op", OPS_WITH_KINK_POINTS, ids=lambda op: op.name)
+def test_kinks_family_puts_inputs_exactly_on_the_drawn_kink_points(op):
+    on_points = []
+    for case in examples(cases(op, families=["kinks"]), 60):
+        points = kink_points(op, case.config.params)
+        on_points.append(np.isin(case.arrays[0], points).ravel())
+    assert np.concatenate(on_points).mean() > 0.6          # three in four by construction
+
+
+def test_kink_points_follow_the_drawn_parameters():
+    # Reference: the clamp's kinks are its bounds (a fact of the op built above).
+    assert kink_points(CLAMP) == (-1.0, 1.0)
+    assert kink_points(CLAMP, {"min_val": -2.0}) == (-2.0, 1.0)
+    assert {c.family for c in examples(cases(CLAMP), 100)} == set(FAMILIES)
+
+
+def test_class_indices_keyword_arrays_and_bounds():
+    labels_seen = set()
+    for case in examples(cases(SCORED), 80):
+        input, target, labels = case.arrays
+        rows, classes = case.config.drawn["batch"], case.config.drawn["classes"]
+        assert labels.dtype.kind == "i" and labels.shape == (rows,)
+        assert np.all((0 <= labels) & (labels < classes))
+        labels_seen |= {(classes, int(v)) for v in labels}
+        variance = case.params["running_var"]
+        assert variance.shape == (classes,) and np.all((0.5 <= variance) & (variance <= 2.0))
+        assert case.cotangent.shape == ()
+    assert {(5, 0), (5, 4), (2, 0), (2, 1)} <= labels_seen   # both ends of every range occur
+
+
+def test_cancellation_pairs_the_target_with_the_input():
+    for case in examples(cases(SCORED, families=["cancellation"]), 30):
+        input, target, _ = case.arrays
+        # Reference: numpy.spacing of float32, the ulp at each input value.
+        ulps = np.abs(target - input) / np.spacing(np.abs(input).astype(np.float32))
+        assert np.all(ulps <= 4) and np.any(target != input)
+
+
+def test_other_families_leave_the_target_independent():
+    for case in examples(cases(SCORED, families=["normal"]), 20):
+        input, target, _ = case.arrays
+        assert not np.allclose(input, target)
 
 
 # ---------------------------------------------------------------------------------------------
