@@ -115,6 +115,13 @@ def _evaluate(fn: Callable, points: np.ndarray, batched: bool) -> np.ndarray:
     return values.astype(np.result_type(values.dtype, np.float64))
 
 
+def _steady_nonfinite_as_zero(values: np.ndarray) -> np.ndarray:
+    """Output elements that are the same infinity at every evaluated point (a max-pool window
+    over padding only) have derivative 0; replace them by 0 so they do not poison sums."""
+    steady = np.all(values == values[:1], axis=0) & ~np.isfinite(values[0])
+    return np.where(steady, 0.0, values)
+
+
 def dense_jacobian(fn: Callable[[np.ndarray], np.ndarray], x: Any, *, fmt: Any = "float64",
                    step: Any = None, richardson: bool = True, kink_distance: Any = None,
                    batched: bool = False) -> Derivative:
@@ -154,7 +161,7 @@ def dense_jacobian(fn: Callable[[np.ndarray], np.ndarray], x: Any, *, fmt: Any =
     displaced = points[np.arange(4 * n), columns] - flat[columns]
     values = _evaluate(fn, points.reshape((4 * n,) + x.shape), batched)
     out_shape = values.shape[1:]
-    values = values.reshape(4, n, -1)                      # (level, element, output)
+    values = _steady_nonfinite_as_zero(values).reshape(4, n, -1)   # (level, element, output)
     width = (displaced.reshape(4, n)[0::2] - displaced.reshape(4, n)[1::2])   # (2, element)
     with np.errstate(divide="ignore", invalid="ignore"):
         d1 = (values[0] - values[1]) / width[0][:, None]
@@ -264,7 +271,8 @@ def directional_check(fn: Callable[[np.ndarray], np.ndarray], x: Any, cotangent:
     s, skipped = _fit_steps(direction * central_step(fmt, x),
                             _kink_room("kink_distance", kink_distance, x.shape))
     points = np.stack([x + level * s for level in _LEVELS])
-    values = np.stack([np.asarray(fn(p), dtype=np.float64) for p in points])
+    values = _steady_nonfinite_as_zero(np.stack([np.asarray(fn(p), dtype=np.float64)
+                                                 for p in points]))
     _checks.check_shape("cotangent", v, values.shape[1:], "the output shape of fn")
     phi = np.tensordot(values, v, axes=v.ndim)              # v . f at each point
     halves = (points[0::2] - points[1::2]) / 2.0             # applied displacements, levels 1, 2

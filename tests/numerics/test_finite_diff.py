@@ -208,6 +208,26 @@ def test_directional_check_against_torch_autograd():
     assert not directional_check(f, x, v, wrong, rng=rng).passed
 
 
+def test_outputs_that_stay_infinite_have_no_derivative():
+    # A max-pool window over padding only is -inf at every point of the stencil (CONTRACT.md);
+    # its derivative is 0 and it must not turn the estimates into inf or NaN.
+    # Reference: d/dx x**2 = 2x (common practice).
+    def f(*, input):
+        return np.concatenate([input ** 2, [-np.inf]])
+
+    def f_vjp(g, *, input):
+        return {"input": 2 * input * g[:-1]}
+
+    x = np.array([0.5, -1.5, 2.0])
+    rng = np.random.default_rng(4)
+    for limit in (10, 0):
+        result = vjp_fd_agreement(f, f_vjp, {"input": x}, rng=rng, dense_limit=limit)[0]
+        assert result.passed and np.isfinite(result.estimate) and result.estimate < 1e-6
+        wrong = vjp_fd_agreement(f, lambda g, *, input: {"input": 2.01 * input * g[:-1]},
+                                 {"input": x}, rng=rng, dense_limit=limit)[0]
+        assert not wrong.passed
+
+
 BAD_CALLS = [
     ("rng", lambda: vjp_fd_agreement(np.sin, None, {}, rng=0), TypeError, r"rng=0"),
     ("kink-shape", lambda: dense_jacobian(np.sin, np.ones(3), kink_distance=np.ones(2)),
