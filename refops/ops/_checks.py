@@ -35,10 +35,22 @@ def as_float_array(name: str, value: Any) -> np.ndarray:
     if value.dtype.kind != "f":
         fail(name, value, "expected a real floating-point dtype "
              "(float16/float32/float64; cast with .astype(numpy.float64))", TypeError)
-    if not np.all(np.isfinite(value)):
+    # One cheap pass: a sum is finite only if every element is (an overflow falls back to the full check).
+    if not np.isfinite(np.sum(value, dtype=np.float64)) and not np.all(np.isfinite(value)):
         bad = np.argwhere(~np.isfinite(value))[0]
         fail(name, value, f"contains a non-finite value at index {tuple(int(i) for i in bad)}")
-    return np.array(value, dtype=np.float64, copy=True)
+    return read_only_float64(value)
+
+
+def read_only_float64(value: np.ndarray) -> np.ndarray:
+    """A float64 array the oracle cannot write to: a read-only view of float64 input (no copy),
+    a converted copy of any other float dtype. Oracles never modify their arguments."""
+    if value.dtype == np.float64:
+        view = value.view()
+    else:
+        view = value.astype(np.float64)
+    view.flags.writeable = False
+    return view
 
 
 def as_integer_array(name: str, value: Any) -> np.ndarray:
