@@ -307,6 +307,14 @@ def _no_terms(g, *arrays, **params):
     return {}
 
 
+def _accept(arrays, params):
+    return params
+
+
+def _clamp_vjp(g, x, **params):
+    return {"input": g * ((x > params["min_val"]) & (x < params["max_val"]))}
+
+
 def _clamp_space(draw):
     min_val = draw.choice("min_val", (-1.0, -2.0))
     length = draw.integer("length", 1, 6)
@@ -320,8 +328,7 @@ def clamp_values(input, *, min_val=-1.0, max_val=1.0):
     return np.clip(input, min_val, max_val)
 
 
-CLAMP = Op(clamp_values, vjp=lambda g, x, **p: {"input": g * ((x > p["min_val"]) & (x < p["max_val"]))},
-           validate=lambda arrays, params: params, space=_clamp_space, error_terms=_no_terms,
+CLAMP = Op(clamp_values, vjp=_clamp_vjp, validate=_accept, space=_clamp_space, error_terms=_no_terms,
            kinks=(Kink("the clamp bounds", "0", distance=lambda arrays, params: {},
                        points=lambda params: (params["min_val"], params["max_val"])),))
 
@@ -340,7 +347,7 @@ def scored(input, target, labels, *, running_var=None):
     return np.asarray(np.sum((input - target) ** 2 / running_var))
 
 
-SCORED = Op(scored, vjp=lambda g, *a, **p: {}, validate=lambda arrays, params: params,
+SCORED = Op(scored, vjp=_no_terms, validate=_accept,
             space=_scored_space, error_terms=_no_terms, output_shape=lambda arrays, params: (),
             integer_arrays=("labels",))
 OPS_WITH_KINK_POINTS = [CLAMP] + [ops.get(n) for n in ops.names() if kink_points(n)]
@@ -360,6 +367,18 @@ def test_kink_points_follow_the_drawn_parameters():
     assert kink_points(CLAMP) == (-1.0, 1.0)
     assert kink_points(CLAMP, {"min_val": -2.0}) == (-2.0, 1.0)
     assert {c.family for c in examples(cases(CLAMP), 100)} == set(FAMILIES)
+
+
+def test_configurations_without_kink_points_get_normal_values():
+    only_at_minus_one = Op(clamp_values, vjp=_clamp_vjp, validate=_accept, space=_clamp_space,
+                           error_terms=_no_terms,
+                           kinks=(Kink("lower bound only when it is -1", "0",
+                                       distance=lambda arrays, params: {},
+                                       points=lambda p: (-1.0,) if p["min_val"] == -1.0 else ()),))
+    families = {}
+    for case in examples(cases(only_at_minus_one, families=["kinks"]), 60):
+        families.setdefault(case.config.params["min_val"], set()).add(case.family)
+    assert families == {-1.0: {"kinks"}, -2.0: {"normal"}}
 
 
 def test_class_indices_keyword_arrays_and_bounds():
