@@ -260,7 +260,8 @@ def _tiny(rng, shape, fmt, low, high, points):
 
 
 def _cancellation(rng, shape, fmt, low, high, points):
-    offset = round_to(np.clip(_signs(rng, (), low, high) * 2.0 ** rng.uniform(0, 7), low, high), fmt)
+    offset = _signs(rng, (), low, high) * 2.0 ** rng.uniform(0, 7)
+    offset = round_to(np.clip(offset, low, high), fmt)
     return offset + _few_ulps(rng, np.broadcast_to(offset, shape), fmt)
 
 
@@ -336,8 +337,9 @@ def cases(op: str | Op, *, pins: Mapping[str, Any] | None = None,
     The input follows the drawn family; other float arrays (weights, biases, targets) are
     ``normal``, except that with ``cancellation`` an array of the input's shape is the input plus a
     few ulps; a configuration whose kinks sit at no fixed input value gets ``normal`` values
-    instead of ``kinks``. Arrays with ``bounds`` in the configuration stay inside them: integer arrays (class
-    indices) are uniform on ``low <= v < high``, float arrays ``normal`` within ``[low, high]``.
+    instead of ``kinks``. Arrays with ``bounds`` in the configuration stay inside them: integer
+    arrays (class indices) are uniform on ``low <= v < high``, float arrays ``normal`` within
+    ``[low, high]``.
     """
     op = _check_op(op)
     pins = _check_pins(pins, op)
@@ -388,9 +390,9 @@ def _case_arrays(seed: int, op: Op, config: CaseConfig, family: str, fmt: Format
             values[name] = round_to(values[lead] + _few_ulps(rng, values[lead], fmt), fmt)
         else:
             low, high = (None, None) if bounds is None else bounds
-            array_family = family if name == lead else "normal"
-            values[name] = _array_maker(shape, family=array_family, format=fmt, min_value=low,
-                                        max_value=high, points=points if name == lead else None)(rng)
+            family_here, points_here = (family, points) if name == lead else ("normal", None)
+            values[name] = _array_maker(shape, family=family_here, format=fmt, min_value=low,
+                                        max_value=high, points=points_here)(rng)
     return values
 
 
@@ -562,7 +564,8 @@ def _check_points(value: Any, family: str, low: float, high: float) -> np.ndarra
 def _check_family_fits(family: str, low: float, high: float, fmt: Format) -> None:
     """Refuse bounds that leave a family no value of its own."""
     if family == "ties" and _tie_range(low, high)[0] > _tie_range(low, high)[1]:
-        _checks.fail("family", family, f"no integer in {list(_TIE_RANGE)} lies in [{low!r}, {high!r}]")
+        _checks.fail("family", family,
+                     f"no integer in {list(_TIE_RANGE)} lies in [{low!r}, {high!r}]")
     if family == "negative" and low >= 0:
         _checks.fail("family", family, f"min_value={low!r} leaves no negative value")
     if family == "tiny" and (low >= fmt.tiny or high <= -fmt.tiny):

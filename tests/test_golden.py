@@ -86,7 +86,8 @@ def test_manifest_records_what_a_replay_needs(bundle):
 
 def test_files_are_plain_npy_with_the_recorded_sha256(bundle):
     entries = manifest_of(bundle)["arrays"]
-    assert sorted(p.name for p in bundle.iterdir()) == sorted([MANIFEST] + [f"{n}.npy" for n in entries])
+    files = sorted(p.name for p in bundle.iterdir())
+    assert files == sorted([MANIFEST] + [f"{n}.npy" for n in entries])
     for name, entry in entries.items():
         data = (bundle / entry["file"]).read_bytes()
         # Reference: hashlib.sha256 and numpy.load read the files independently of refops.
@@ -240,7 +241,8 @@ BAD_WRITES = [
      r"arrays\['input'\]=\[1.0, 2.0\]: expected a numpy array, got list"),
     ("object-array", dict(arrays={"input": _object_array()}), TypeError,
      r"arrays\['input'\]=array\(shape=\(2,\), dtype=object\): expected a numeric dtype"),
-    ("string-array", dict(arrays={"input": np.array(["a"])}), TypeError, r"expected a numeric dtype"),
+    ("string-array", dict(arrays={"input": np.array(["a"])}), TypeError,
+     r"expected a numeric dtype"),
     ("traversal-name", dict(arrays={"../x": np.zeros(2)}), ValueError,
      r"arrays\['../x'\]='../x': an array name is letters"),
     ("separator-name", dict(arrays={"a/b": np.zeros(2)}), ValueError, r"no path separators"),
@@ -250,8 +252,9 @@ BAD_WRITES = [
      r"'grad' and 'Grad' differ only in case"),
     ("manifest-not-a-mapping", dict(manifest=["config"]), TypeError,
      r"manifest=\['config'\]: expected a mapping"),
-    ("manifest-lacks-seed", dict(manifest={k: v for k, v in MANIFEST_FIELDS.items() if k != "seed"}),
-     ValueError, r"lacks the key 'seed'"),
+    ("manifest-lacks-seed",
+     dict(manifest={k: v for k, v in MANIFEST_FIELDS.items() if k != "seed"}), ValueError,
+     r"lacks the key 'seed'"),
     ("manifest-reserved-key", dict(manifest={**MANIFEST_FIELDS, "arrays": {}}), ValueError,
      r"the key 'arrays' is written by refops"),
     ("manifest-nan", dict(manifest={**MANIFEST_FIELDS, "errors": {"output": float("nan")}}),

@@ -32,7 +32,8 @@ def examples(strategy, count):
 
 def representable(x, fmt):
     # Reference: torch's casts to each dtype; a representable value survives the round trip.
-    back = torch.from_numpy(np.ascontiguousarray(x, dtype=np.float64)).to(TORCH_DTYPES[fmt]).double()
+    x = np.ascontiguousarray(x, dtype=np.float64)
+    back = torch.from_numpy(x).to(TORCH_DTYPES[fmt]).double()
     return np.array_equal(back.numpy(), x)
 
 
@@ -72,7 +73,8 @@ def test_every_generated_case_is_accepted_by_the_oracle(name):
             if array_name in case.config.bounds and value is not None:
                 low, high = case.config.bounds[array_name]
                 assert np.all(value >= low)
-                assert np.all(value < high) if array_name in op.integer_arrays else np.all(value <= high)
+                inside = value < high if array_name in op.integer_arrays else value <= high
+                assert np.all(inside)
     accepted()
 
 
@@ -328,7 +330,8 @@ def clamp_values(input, *, min_val=-1.0, max_val=1.0):
     return np.clip(input, min_val, max_val)
 
 
-CLAMP = Op(clamp_values, vjp=_clamp_vjp, validate=_accept, space=_clamp_space, error_terms=_no_terms,
+CLAMP = Op(clamp_values, vjp=_clamp_vjp, validate=_accept, space=_clamp_space,
+           error_terms=_no_terms,
            kinks=(Kink("the clamp bounds", "0", distance=lambda arrays, params: {},
                        points=lambda params: (params["min_val"], params["max_val"])),))
 
@@ -440,7 +443,8 @@ BAD_CALLS = [
      r"min_value='0': expected a real number or None, got str"),
     ("arrays-min-infinite", lambda: value_arrays(3, min_value=-np.inf), ValueError,
      r"min_value=-inf: must be finite and within"),
-    ("arrays-max-beyond-format", lambda: value_arrays(3, format="float16", max_value=1e5), ValueError,
+    ("arrays-max-beyond-format", lambda: value_arrays(3, format="float16", max_value=1e5),
+     ValueError,
      r"max_value=100000.0: must be finite and within ±65504 \(float16 max\)"),
     ("arrays-min-above-max", lambda: value_arrays(3, min_value=2, max_value=1), ValueError,
      r"min_value=2.0: must be <= max_value=1.0"),
