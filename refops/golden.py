@@ -112,6 +112,7 @@ def write_bundle(directory: str | os.PathLike, *, arrays: Mapping[str, np.ndarra
     directory = _check_directory_for_writing(directory)
     arrays = _check_arrays(arrays)
     manifest = _check_manifest_for_writing(manifest)
+    directory.mkdir(parents=True, exist_ok=True)
     entries = {}
     for name, array in arrays.items():
         data = _npy_bytes(array)
@@ -168,7 +169,6 @@ def _check_directory_for_writing(value: Any) -> Path:
     if directory.exists() and (not directory.is_dir() or any(directory.iterdir())):
         _checks.fail("directory", str(directory), "must not exist or be an empty directory "
                      "(a bundle is never written over another)")
-    directory.mkdir(parents=True, exist_ok=True)
     return directory
 
 

@@ -273,6 +273,7 @@ def test_bad_write_arguments_are_named(tmp_path, override, kind, message):
     call.update(override)
     with pytest.raises(kind, match=message):
         write_bundle(call.pop("directory"), **call)
+    assert not (tmp_path / "b").exists()      # nothing is written before every check passed
 
 
 def test_writing_over_an_existing_bundle_is_refused(bundle):
