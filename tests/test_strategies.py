@@ -6,6 +6,7 @@ from hypothesis import HealthCheck, find, given, settings
 from hypothesis import strategies as st
 
 import refops.ops as ops
+from refops.numerics.formats import round_to
 from refops import strategies
 from refops.ops import CaseConfig, Kink, Op
 from refops.ops._space import PinError, RandomDraw
@@ -360,7 +361,8 @@ OPS_WITH_KINK_POINTS = [CLAMP] + [ops.get(n) for n in ops.names() if kink_points
 def test_kinks_family_puts_inputs_exactly_on_the_drawn_kink_points(op):
     on_points = []
     for case in examples(cases(op, families=["kinks"]), 60):
-        points = kink_points(op, case.config.params)
+        # A kink that the format cannot represent is hit at its nearest representable value.
+        points = round_to(np.asarray(kink_points(op, case.config.params)), case.format)
         on_points.append(np.isin(case.arrays[0], points).ravel())
     assert np.concatenate(on_points).mean() > 0.6          # three in four by construction
 
