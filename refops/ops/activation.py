@@ -750,8 +750,13 @@ def _mish_parts(x):
 
 
 def _mish_slope(x):
+    """``t + x T``; for ``x <= 0`` one fraction in ``q = exp(x)``:
+    ``q (4 (1 + x) + q (6 + 4x) + q**2 (4 + q)) / (q**2 + 2q + 2)**2`` (cancels only at the zero)."""
     t, t_slope = _mish_parts(x)
-    return t + x * t_slope
+    q = np.exp(-np.abs(x))
+    n2 = q * (q + 2.0) + 2.0
+    negative = q * (4.0 * (1.0 + x) + q * (6.0 + 4.0 * x) + q * q * (4.0 + q)) / (n2 * n2)
+    return np.where(x > 0, t + x * t_slope, negative)
 
 
 def _mish_curvature(x):
