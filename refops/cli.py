@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import argparse
 import inspect
+import json
 import sys
 import textwrap
 
@@ -30,12 +31,106 @@ def _list_ops(args: argparse.Namespace) -> int:
     return 0
 
 
+def _pin(text: str) -> tuple[str, object]:
+    """``NAME=VALUE``: VALUE as JSON, or a plain string when it is not JSON."""
+    if "=" not in text:
+        raise argparse.ArgumentTypeError(f"--set {text!r}: expected NAME=VALUE, e.g. --set kernel_size=3")
+    name, value = text.split("=", 1)
+    try:
+        return name, json.loads(value)
+    except json.JSONDecodeError:
+        return name, value
+
+
+class _Progress:
+    """A progress bar on a terminal (rich), nothing otherwise."""
+
+    def __init__(self, enabled: bool):
+        self.bar = None
+        if enabled and sys.stderr.isatty():
+            from rich.progress import Progress
+            self.bar = Progress(transient=True)
+            self.task = self.bar.add_task("cases", total=None)
+            self.bar.start()
+
+    def __call__(self, done: int, total: int) -> None:
+        if self.bar:
+            self.bar.update(self.task, completed=done, total=total)
+
+    def close(self) -> None:
+        if self.bar:
+            self.bar.stop()
+
+
+def _check(args: argparse.Namespace) -> int:
+    from .harness import check_layer
+    from .harness.subject import TargetError, load_factory
+    from .ops._space import PinError
+    from .report.text import render_text
+    if args.device != "cpu":
+        import torch
+        if args.device.startswith("cuda") and not torch.cuda.is_available():
+            print(f"refops check: --device {args.device}: no CUDA device is available here", file=sys.stderr)
+            return 2
+    try:
+        ops.get(args.op)
+        load_factory(args.target)
+    except (ops.UnknownOpError, TargetError) as error:
+        print(f"refops check: {error}", file=sys.stderr)
+        return 2
+    progress = _Progress(not args.quiet)
+    try:
+        report = check_layer(args.target, args.op, cases=args.cases, seed=args.seed, dtype=args.dtype,
+                             pins=dict(args.set), layout=args.layout, device=args.device,
+                             timeout=args.timeout, budget=args.budget,
+                             case_ids=[args.case] if args.case else None, progress=progress)
+    except (PinError, ValueError, RuntimeError) as error:
+        print(f"refops check: {error}", file=sys.stderr)
+        return 2
+    finally:
+        progress.close()
+    print(render_text(report))
+    if args.json:
+        with open(args.json, "w", encoding="utf-8") as stream:
+            json.dump(report.to_json(), stream, indent=1)
+    if args.junit:
+        from .report.junit import write_junit
+        write_junit(report, args.junit)
+    if args.html:
+        from .report.html import write_html
+        print(f"HTML report written to {write_html(report, args.html)}")
+    if args.markdown:
+        from .report.markdown import write_markdown
+        write_markdown(report, args.markdown)
+    return 0 if report.passed else 1
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="refops", description=__doc__)
     commands = parser.add_subparsers(dest="command", required=True)
     listing = commands.add_parser("ops", help="list every oracle with its parameters, formula and output size")
     listing.add_argument("names", nargs="*", help="only these ops")
     listing.set_defaults(run=_list_ops)
+
+    check = commands.add_parser("check", help="check a layer factory against an oracle over drawn cases")
+    check.add_argument("target", help="package.module:attr or path/to/file.py:attr (a layer factory)")
+    check.add_argument("--op", required=True, help="the oracle to compare with (refops ops lists them)")
+    check.add_argument("--cases", type=int, default=50, help="number of drawn cases (default 50)")
+    check.add_argument("--seed", type=int, default=0)
+    check.add_argument("--dtype", default="float32", choices=["float64", "float32", "float16", "bfloat16"])
+    check.add_argument("--set", type=_pin, action="append", default=[], metavar="NAME=VALUE",
+                       help="pin a configuration value (JSON, else a string); repeatable")
+    check.add_argument("--case", help="replay one case by its id (SEED-INDEX, as printed)")
+    check.add_argument("--layout", default="contiguous", choices=["contiguous", "channels_last", "strided"])
+    check.add_argument("--device", default="cpu", help="cpu (default) or cuda")
+    check.add_argument("--timeout", type=float, default=60.0, help="seconds one case may take (default 60)")
+    check.add_argument("--budget", type=float, help="stop drawing new cases after this many seconds")
+    check.add_argument("--json", metavar="PATH", help="write the report as JSON")
+    check.add_argument("--junit", metavar="PATH", help="write JUnit XML")
+    check.add_argument("--html", metavar="PATH", help="write a self-contained HTML report")
+    check.add_argument("--markdown", metavar="PATH", help="write a Markdown summary")
+    check.add_argument("--quiet", action="store_true", help="no progress bar")
+    check.set_defaults(run=_check)
     return parser
 
 

@@ -1,0 +1,203 @@
+"""Cases and verdicts: draw a case, run the subject, run the oracle, compare under the bound.
+
+A case is a configuration drawn from the op's space (with pins), inputs from one value family,
+parameters and a cotangent, all rounded to the subject's format so that the oracle (float64)
+sees exactly what the subject saw. Its id ``SEED-INDEX`` replays it.
+"""
+from __future__ import annotations
+
+import dataclasses
+import time
+from dataclasses import dataclass
+from typing import Any, Callable, Mapping
+
+import numpy as np
+
+from .. import ops
+from ..numerics.compare import compare
+from ..numerics.formats import get_format, round_to
+from ..numerics.tolerance import RoundingBound
+from ..ops._space import PinError, RandomDraw, pinned_value
+from . import deviations as _deviations
+from .values import FAMILIES, families_for
+from .verdict import CaseResult, Report
+
+DTYPES = ("float64", "float32", "float16", "bfloat16")
+
+
+@dataclass
+class Case:
+    case_id: str
+    config: Any
+    family: str
+    arrays: dict
+    params: dict
+    cotangent: np.ndarray
+
+
+def _fan_in_scale(name: str, shape: tuple) -> float:
+    """Weights scaled like a trained layer's (1/sqrt(fan in)) so outputs stay O(1)."""
+    if name == "weight" and len(shape) >= 2:
+        return 1.0 / np.sqrt(int(np.prod(shape[1:])))
+    return 1.0
+
+
+def draw_case(op, seed: int, index: int, dtype: str, pins: Mapping[str, Any] | None = None) -> Case:
+    """The case ``seed-index``: deterministic, independent of how many cases run around it."""
+    rng = np.random.default_rng([seed, index])
+    draw = RandomDraw(rng, pins)
+    config = op.space(draw)
+    unused = draw.unused_pins()
+    if unused:
+        raise PinError(f"--set {unused[0]}: {op.name}'s configuration has no parameter {unused[0]!r}; "
+                       f"it draws: {', '.join(sorted(draw.drawn))}")
+    families = families_for(op)
+    family = families[index % len(families)]
+    arrays = {}
+    for name, shape in config.shapes.items():
+        if shape is None:
+            arrays[name] = None
+        elif name in op.integer_arrays:
+            low, high = config.bounds[name]
+            arrays[name] = rng.integers(low, high, size=shape)
+        elif name in config.bounds:
+            low, high = config.bounds[name]
+            arrays[name] = round_to(rng.uniform(low, high, size=shape), dtype)
+        elif name == op.arrays[0]:
+            arrays[name] = round_to(FAMILIES[family](rng, shape, dtype, op, config.params), dtype)
+        else:
+            arrays[name] = round_to(rng.standard_normal(shape) * _fan_in_scale(name, shape), dtype)
+    params = {**config.params, **{k: v for k, v in arrays.items() if k in op.defaults}}
+    positional = tuple(arrays.get(name) for name in op.arrays)
+    try:
+        shape = op.output_shape(*positional, **params)
+    except (ValueError, TypeError) as error:
+        raise PinError(f"the pinned values make an invalid {op.name} configuration: {error}") from None
+    cotangent = round_to(rng.standard_normal(shape), dtype)
+    return Case(f"{seed}-{index}", config, family, arrays, params, cotangent)
+
+
+def _oracle(op, case: Case, dtype: str, model, use_deviations: bool):
+    """Reference output and gradients, with the allowed error of each, and deviations applied."""
+    positional = tuple(case.arrays.get(name) for name in op.arrays)
+    kwargs = {k: v for k, v in case.params.items()}
+    out = op(*positional, **kwargs)
+    grads = op.vjp(case.cotangent, *positional, **kwargs)
+    terms = op.error_terms(case.cotangent, *positional, **kwargs)
+    fmt = get_format(dtype)
+    references, allowed, applied = {"output": out, **grads}, {}, []
+    for tensor, reference in references.items():
+        term = terms[tensor]
+        deviation = _deviations.applicable(op.name, dtype, tensor, use_deviations)
+        if deviation is not None:
+            term = dataclasses.replace(term, accumulate=deviation.accumulate)
+            applied.append(deviation.describe())
+        allowed[tensor] = model.allowed(reference, term, fmt, tensor=tensor)
+    return references, allowed, applied
+
+
+def _job(op, case: Case, dtype: str, layout: str, device: str) -> dict:
+    return {"arrays": case.arrays, "array_order": list(op.arrays), "layer": case.config.layer,
+            "params": case.params, "dtype": dtype, "layout": layout, "device": device,
+            "cotangent": case.cotangent}
+
+
+def judge(op, case: Case, result: dict, dtype: str, model, use_deviations: bool = True
+          ) -> tuple[CaseResult, list[str]]:
+    """Turn the subject's result for a case into a verdict."""
+    verdict = CaseResult(case_id=case.case_id, config={**case.config.drawn, **case.config.layer},
+                         values=case.family, status="passed")
+    if result.get("fault"):
+        verdict.status, verdict.message = result["fault"], result["error"]
+        return verdict, []
+    if result.get("error"):
+        verdict.status, verdict.message = "subject-error", result["error"]
+        return verdict, []
+    references, allowed, applied = _oracle(op, case, dtype, model, use_deviations)
+    verdict.findings.extend(result["findings"])
+    if result["output_dtype"] != dtype:
+        verdict.findings.append(f"the output has dtype {result['output_dtype']}, expected {dtype}")
+    subject = {"output": result["output"], **result["grads"]}
+    for tensor, reference in references.items():
+        value = subject.get(tensor)
+        if value is None:
+            verdict.findings.append(f"no gradient for {tensor}" if tensor != "output" else "no output")
+            continue
+        if value.shape != reference.shape:
+            verdict.findings.append(f"{'the output' if tensor == 'output' else 'the gradient of ' + tensor} "
+                                    f"has shape {value.shape}, expected {reference.shape}")
+            continue
+        verdict.comparisons.append(compare(tensor, value, reference, allowed[tensor], dtype,
+                                           model=model.describe()))
+    if verdict.findings or not all(c.passed for c in verdict.comparisons):
+        verdict.status = "failed"
+    return verdict, applied
+
+
+def _replay(target: str, op: str, dtype: str, pins: Mapping[str, Any], case_id: str, layout: str) -> str:
+    sets = "".join(f" --set {k}={_pin_text(v)}" for k, v in sorted(pins.items()))
+    extra = "" if layout == "contiguous" else f" --layout {layout}"
+    return f"refops check {target} --op {op} --dtype {dtype}{sets}{extra} --case {case_id}"
+
+
+def _pin_text(value: Any) -> str:
+    import json
+    return value if isinstance(value, str) else json.dumps(list(value) if isinstance(value, tuple) else value)
+
+
+def parse_case_id(case_id: str) -> tuple[int, int]:
+    """``"SEED-INDEX"`` -> ``(seed, index)``."""
+    try:
+        seed, index = (int(part) for part in case_id.split("-"))
+    except (ValueError, AttributeError):
+        raise ValueError(f"case={case_id!r}: expected SEED-INDEX as printed in a report (e.g. 0-17)") from None
+    return seed, index
+
+
+def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int = 0, dtype: str = "float32",
+                pins: Mapping[str, Any] | None = None, layout: str = "contiguous", device: str = "cpu",
+                timeout: float = 60.0, budget: float | None = None, model=None,
+                case_ids: list[str] | None = None, use_deviations: bool = True,
+                progress: Callable[[int, int], None] | None = None) -> Report:
+    """Check a subject against the oracle ``op`` over drawn cases; returns a :class:`Report`.
+
+    ``target`` is ``"package.module:attr"`` / ``"path/file.py:attr"`` (run in a worker process, so a
+    crash of the subject is a verdict) or a factory callable (run in this process). The factory
+    receives the op's layer configuration as keyword arguments and returns a torch module (or a
+    callable on tensors). ``pins`` fixes configuration values; ``case_ids`` replays given cases.
+    """
+    from .subject import LAYOUTS, run_subject
+    from .worker import Worker
+    oracle = ops.get(op)
+    if dtype not in DTYPES:
+        raise ValueError(f"dtype={dtype!r}: expected one of {', '.join(DTYPES)}")
+    if layout not in LAYOUTS:
+        raise ValueError(f"layout={layout!r}: expected one of {', '.join(LAYOUTS)}")
+    pins = {k: pinned_value(v) for k, v in (pins or {}).items()}
+    model = model or RoundingBound()
+    name = target if isinstance(target, str) else getattr(target, "__qualname__", repr(target))
+    report = Report(op=op, target=name, dtype=dtype, seed=seed, model=model.describe())
+    plan = [parse_case_id(c) for c in case_ids] if case_ids else [(seed, i) for i in range(cases)]
+    drawn = [draw_case(oracle, s, i, dtype, pins) for s, i in plan]  # bad pins fail before any run
+    worker = Worker(target, timeout) if isinstance(target, str) else None
+    applied: set[str] = set()
+    start = time.perf_counter()
+    try:
+        for count, case in enumerate(drawn):
+            if budget is not None and time.perf_counter() - start > budget:
+                break
+            began = time.perf_counter()
+            job = _job(oracle, case, dtype, layout, device)
+            result = worker.run(job) if worker else run_subject(target, job)
+            verdict, used = judge(oracle, case, result, dtype, model, use_deviations)
+            verdict.seconds = time.perf_counter() - began
+            verdict.replay = _replay(name, op, dtype, pins, case.case_id, layout)
+            report.cases.append(verdict)
+            applied.update(used)
+            if progress:
+                progress(count + 1, len(drawn))
+    finally:
+        if worker:
+            worker.close()
+    report.deviations = sorted(applied)
+    return report

@@ -1,0 +1,170 @@
+"""Running a subject (a torch layer, or a callable on tensors) forward and backward.
+
+This is the only module that drives a framework. :func:`run_subject` takes float64 numpy arrays
+that are already exactly representable in the subject's format, casts them (exactly), runs the
+subject twice and returns float64 numpy results plus findings about its behaviour (in-place
+changes, missing gradients, non-determinism). It never raises for a fault of the subject: the
+fault comes back as ``error``.
+"""
+from __future__ import annotations
+
+import importlib
+import importlib.util
+import os
+import sys
+import traceback
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+
+LAYOUTS = ("contiguous", "channels_last", "strided")
+
+
+class TargetError(ValueError):
+    """A TARGET that cannot be loaded (exit status 2 on the command line)."""
+
+
+def load_factory(target: str) -> Callable:
+    """The callable named by ``package.module:attr`` or ``path/to/file.py:attr``."""
+    if not isinstance(target, str) or ":" not in target:
+        raise TargetError(f"target={target!r}: expected package.module:attr or path/to/file.py:attr")
+    location, attr = target.rsplit(":", 1)
+    try:
+        if location.endswith(".py") or os.sep in location:
+            path = Path(location)
+            if not path.is_file():
+                raise TargetError(f"target={target!r}: no file {location}")
+            spec = importlib.util.spec_from_file_location(path.stem, path)
+            module = importlib.util.module_from_spec(spec)
+            sys.modules.setdefault(path.stem, module)
+            spec.loader.exec_module(module)
+        else:
+            if os.getcwd() not in sys.path:
+                sys.path.insert(0, os.getcwd())
+            module = importlib.import_module(location)
+    except TargetError:
+        raise
+    except Exception as error:  # the user's module failed to import
+        raise TargetError(f"target={target!r}: importing {location} failed: "
+                          f"{type(error).__name__}: {error}") from None
+    factory = getattr(module, attr, None)
+    if not callable(factory):
+        raise TargetError(f"target={target!r}: {location} has no callable {attr!r}")
+    return factory
+
+
+def _torch():
+    import torch
+    return torch
+
+
+def torch_dtype(name: str):
+    torch = _torch()
+    return {"float64": torch.float64, "float32": torch.float32, "float16": torch.float16,
+            "bfloat16": torch.bfloat16}[name]
+
+
+def _to_numpy(tensor) -> np.ndarray:
+    return tensor.detach().to(_torch().float64).cpu().numpy()
+
+
+def _as_tensor(value: np.ndarray, dtype, device: str, layout: str, grad: bool):
+    torch = _torch()
+    if value.dtype.kind in "iu":
+        return torch.tensor(value, dtype=torch.int64, device=device)
+    tensor = torch.tensor(value, dtype=torch.float64).to(dtype=dtype, device=device)
+    if layout == "channels_last" and tensor.ndim == 4:
+        tensor = tensor.contiguous(memory_format=torch.channels_last)
+    elif layout == "strided" and tensor.ndim >= 1 and tensor.shape[-1] > 0:
+        wide = torch.zeros(tensor.shape[:-1] + (2 * tensor.shape[-1],), dtype=dtype, device=device)
+        wide[..., ::2] = tensor
+        tensor = wide[..., ::2]  # same values, non-contiguous
+    return tensor.requires_grad_(grad)
+
+
+def _forward_backward(subject, inputs: dict, params: dict, cotangent, as_module: bool):
+    """One forward + backward; returns (output, {name: grad or None})."""
+    for tensor in list(inputs.values()) + list(params.values()):
+        if tensor is not None and tensor.grad is not None:
+            tensor.grad = None
+    if as_module:
+        output = subject(*[t for t in inputs.values() if t is not None])
+    else:
+        output = subject(*[t for t in list(inputs.values()) + list(params.values())])
+    torch = _torch()
+    if not isinstance(output, torch.Tensor):
+        raise TypeError(f"the subject returned {type(output).__name__}, not a tensor")
+    if tuple(output.shape) != tuple(cotangent.shape):
+        return output, {}  # the caller reports the wrong shape; no backward is possible
+    if output.is_floating_point() and output.requires_grad:
+        output.backward(cotangent.to(output.dtype))
+    grads = {name: t.grad for name, t in {**inputs, **params}.items() if t is not None and t.is_floating_point()}
+    return output, grads
+
+
+def run_subject(factory: Callable, job: dict) -> dict:
+    """Run one case; ``job`` holds op arrays, layer config, dtype, layout, device and cotangent."""
+    torch = _torch()
+    try:
+        return _run(factory, job, torch)
+    except Exception as error:  # a fault of the subject, reported as a verdict
+        frames = traceback.extract_tb(error.__traceback__)
+        where = f" (at {Path(frames[-1].filename).name}:{frames[-1].lineno})" if frames else ""
+        return {"error": f"{type(error).__name__}: {error}{where}"}
+
+
+def _run(factory: Callable, job: dict, torch) -> dict:
+    dtype = torch_dtype(job["dtype"])
+    device, layout = job["device"], job["layout"]
+    findings = []
+    subject = factory(**job["layer"])
+    as_module = isinstance(subject, torch.nn.Module)
+    arrays = job["arrays"]
+    inputs, params = {}, {}
+    if as_module:
+        subject = subject.to(device=device, dtype=dtype)
+        subject.train(bool(job["params"].get("training", True)))
+        owned = dict(subject.named_parameters())
+        buffers = dict(subject.named_buffers())
+        for name, value in arrays.items():
+            if name in owned:
+                if value is None:
+                    raise ValueError(f"the layer has a parameter {name!r} but the configuration has none")
+                if tuple(owned[name].shape) != value.shape:
+                    raise ValueError(f"parameter {name!r} has shape {tuple(owned[name].shape)}, "
+                                     f"expected {value.shape}")
+                with torch.no_grad():
+                    owned[name].copy_(torch.tensor(value, dtype=torch.float64))
+                params[name] = owned[name]
+            elif name in buffers and value is not None:
+                with torch.no_grad():
+                    buffers[name].copy_(torch.tensor(value, dtype=torch.float64))
+            elif name in job["array_order"]:
+                inputs[name] = None if value is None else _as_tensor(value, dtype, device, layout, True)
+        for name, value in arrays.items():
+            if value is None and name in owned and owned[name] is not None:
+                raise ValueError(f"the configuration has no {name} but the layer has one")
+    else:
+        for name in job["array_order"]:
+            value = arrays.get(name)
+            inputs[name] = None if value is None else _as_tensor(value, dtype, device, layout, True)
+    saved = {n: t.detach().clone() for n, t in {**inputs, **params}.items() if t is not None}
+    cotangent = torch.tensor(job["cotangent"], dtype=torch.float64).to(device=device)
+    output, grads = _forward_backward(subject, inputs, params, cotangent, as_module)
+    for name, before in saved.items():
+        now = {**inputs, **params}[name].detach()
+        if not torch.equal(torch.nan_to_num(before), torch.nan_to_num(now)):
+            findings.append(f"the subject changed its {name} in place")
+    first = {"output": _to_numpy(output), **{n: None if g is None else _to_numpy(g) for n, g in grads.items()}}
+    for name, before in saved.items():  # restore, so the second run sees the same values
+        with torch.no_grad():
+            {**inputs, **params}[name].copy_(before)
+    output2, grads2 = _forward_backward(subject, inputs, params, cotangent, as_module)
+    second = {"output": _to_numpy(output2), **{n: None if g is None else _to_numpy(g) for n, g in grads2.items()}}
+    for name in first:
+        a, b = first[name], second.get(name)
+        if a is not None and b is not None and not np.array_equal(a, b, equal_nan=True):
+            findings.append(f"not deterministic: {name} differs between two identical runs")
+    return {"output": first["output"], "output_dtype": str(output.dtype).replace("torch.", ""),
+            "grads": {n: g for n, g in first.items() if n != "output"}, "findings": findings, "error": ""}

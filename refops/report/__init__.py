@@ -1,0 +1,1 @@
+"""Renderers of a harness Report: text (terminal), JUnit XML, HTML and Markdown."""
