@@ -35,6 +35,7 @@ class _Windows:
 
     spatial: tuple[int, ...]
     out: tuple[int, ...]
+    taps: int  # taps per window (the last axis of ``gather``)
 
     def gather(self, x: np.ndarray, fill: float) -> np.ndarray:  # pragma: no cover - interface
         raise NotImplementedError
@@ -44,8 +45,8 @@ class _Windows:
 
     def source(self) -> np.ndarray:
         """``(*out, taps)``: the flat spatial index each tap reads, ``-1`` on padding."""
-        index = np.arange(math.prod(self.spatial)).reshape(self.spatial)
-        return self.gather(index, -1)
+        index = np.arange(math.prod(self.spatial), dtype=float).reshape(self.spatial)
+        return self.gather(index, -1.0).astype(np.int64)  # small ints: exact in float64
 
     def taps_inside(self) -> np.ndarray:
         """``(*out)``: how many taps of each window lie on the input (not on padding)."""
@@ -81,6 +82,7 @@ class _FixedWindows(_Windows):
         extent = [(o - 1) * s + d * (k - 1) + 1
                   for o, k, s, d in zip(self.out, kernel, stride, dilation)]
         self.pairs = tuple((p, max(p, e - size - p)) for p, e, size in zip(padding, extent, spatial))
+        self.taps = math.prod(self.kernel)
 
     @classmethod
     def over(cls, x: np.ndarray, kernel_size, stride, padding, dilation, ceil_mode) -> "_FixedWindows":
@@ -93,11 +95,9 @@ class _FixedWindows(_Windows):
         return view.reshape(view.shape[:view.ndim - len(self.kernel)] + (math.prod(self.kernel),))
 
     def scatter(self, cols: np.ndarray) -> np.ndarray:
-        n = len(self.kernel)
         blocks = cols.reshape(cols.shape[:-1] + self.kernel)
         padded = tuple(size + lo + hi for size, (lo, hi) in zip(self.spatial, self.pairs))
-        return _window.unpad(_window.fold(blocks, padded, self.stride, self.dilation), self.pairs)[
-            (Ellipsis,) + (slice(None),) * n]
+        return _window.unpad(_window.fold(blocks, padded, self.stride, self.dilation), self.pairs)
 
     def taps_on_padded_input(self) -> np.ndarray:
         """``(*out)``: taps of each window on the input or its padding (not past the padding)."""
@@ -128,6 +128,7 @@ class _AdaptiveWindows(_Windows):
             shape[dim], shape[n + dim] = taps.shape
             self.index.append(np.minimum(taps, size - 1).reshape(shape))
             self.valid = self.valid & (taps < stop[:, None]).reshape(shape)
+        self.taps = math.prod(i.shape[n + dim] for dim, i in enumerate(self.index))
 
     @classmethod
     def over(cls, x: np.ndarray, output_size) -> "_AdaptiveWindows":
@@ -188,8 +189,7 @@ def _avg_pool(x: np.ndarray, windows: _Windows, divisor) -> np.ndarray:
 
 def _avg_pool_vjp(g: np.ndarray, windows: _Windows, divisor) -> np.ndarray:
     share = g / divisor
-    return windows.scatter(np.broadcast_to(share[..., None], share.shape + (windows.gather(
-        np.zeros(windows.spatial), 0.0).shape[-1],)))
+    return windows.scatter(np.broadcast_to(share[..., None], share.shape + (windows.taps,)))
 
 
 def _avg_error_terms(g: np.ndarray, x: np.ndarray, windows: _Windows, divisor) -> dict[str, ErrorTerms]:
