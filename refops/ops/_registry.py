@@ -134,7 +134,7 @@ class Op:
 
     def __call__(self, *arrays: Any, **params: Any) -> np.ndarray:
         checked, normal = self.prepare(arrays, params)
-        return self._forward(*checked.values(), **normal)
+        return np.asarray(self._forward(*checked.values(), **normal), dtype=np.float64)
 
     def vjp(self, grad_output: Any, *arrays: Any, **params: Any) -> dict[str, np.ndarray]:
         """The vector-Jacobian product: one gradient per differentiable array that was given."""

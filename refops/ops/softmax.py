@@ -56,11 +56,14 @@ def _softmax_error_terms(g, input, *, dim):
     spread = np.sum(s * np.abs(z), axis=dim, keepdims=True)
     dot = np.sum(g * s, axis=dim, keepdims=True)
     abs_dot = np.sum(np.abs(g) * s, axis=dim, keepdims=True)
+    # exp(z) carries a relative error |z| u; the normalising sum spreads sum s |z| u to all.
+    output_error = s * (1 + np.abs(z) + spread)
+    # The backward reuses the computed s: its error (output_error) propagates through
+    # s (g - dot) and through dot = sum g s; the rounded saved output adds `rounded`.
+    propagated = output_error * np.abs(g - dot) + s * np.sum(output_error * np.abs(g), axis=dim, keepdims=True)
     return {
-        # exp(z) carries a relative error |z| u; the normalising sum spreads sum s |z| u to all.
-        "output": ErrorTerms(s * (1 + np.abs(z) + spread), n),
-        # The backward reuses the rounded saved output s: d grad / d s sensitivity in `rounded`.
-        "input": ErrorTerms(s * (np.abs(g) + abs_dot), n,
+        "output": ErrorTerms(output_error, n),
+        "input": ErrorTerms(s * (np.abs(g) + abs_dot) + propagated, n,
                             rounded=s * (np.abs(g - dot) + abs_dot)),
     }
 

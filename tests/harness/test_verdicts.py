@@ -1,0 +1,103 @@
+"""The harness on real subjects: torch's own layers pass (no false alarms), buggy layers fail (teeth)."""
+import functools
+
+import pytest
+import torch
+
+from refops.harness import check_layer
+from torch_layers import FACTORIES, BackwardDefect, ForwardDefect, OverflowingSoftplus, TiedMaxPool
+
+HERE = "tests/harness/torch_layers.py"
+SAFE_IN_PROCESS = sorted(set(FACTORIES) - {"max_pool2d"})
+
+
+# (op, dtype) pairs whose error terms do not yet model how torch computes them (elementwise and
+# normalisation backward passes with several roundings in the I/O format, a float16 atan backward
+# whose 1 + x^2 overflows): the harness flags torch there today. They are listed, not hidden: the
+# test below proves they still fail, so fixing one forces moving it into the passing set.
+OPEN_FALSE_ALARMS = {
+    ("atan", "bfloat16"), ("atan", "float16"), ("batch_norm", "bfloat16"), ("batch_norm", "float16"),
+    ("binary_cross_entropy_with_logits", "bfloat16"), ("binary_cross_entropy_with_logits", "float16"),
+    ("binary_cross_entropy_with_logits", "float32"), ("cross_entropy", "bfloat16"), ("cross_entropy", "float16"),
+    ("gelu", "bfloat16"), ("gelu", "float32"), ("group_norm", "bfloat16"), ("group_norm", "float16"),
+    ("layer_norm", "bfloat16"), ("layer_norm", "float16"), ("log_softmax", "bfloat16"), ("log_softmax", "float16"),
+    ("logsigmoid", "bfloat16"), ("logsigmoid", "float16"), ("mse_loss", "bfloat16"), ("mse_loss", "float16"),
+    ("prelu", "bfloat16"), ("prelu", "float16"), ("sigmoid", "float16"), ("silu", "float32"),
+    ("softmax", "bfloat16"), ("softsign", "bfloat16"), ("softsign", "float16"), ("softsign", "float32"),
+}
+PAIRS = [(op, dtype) for op in SAFE_IN_PROCESS for dtype in ("float32", "float16", "bfloat16")]
+
+
+@pytest.mark.parametrize("op, dtype", [p for p in PAIRS if p not in OPEN_FALSE_ALARMS])
+def test_torch_layers_pass(op, dtype):
+    # Reference: torch's own layers are an independent implementation of each op; a correct
+    # implementation must pass with the default tolerance (known deviations declared in
+    # refops/harness/deviations.py).
+    report = check_layer(FACTORIES[op], op, cases=12, seed=1, dtype=dtype)
+    assert len(report.cases) == 12
+    report.raise_if_failed()
+
+
+@pytest.mark.parametrize("op, dtype", sorted(OPEN_FALSE_ALARMS))
+def test_open_false_alarms_are_still_open(op, dtype):
+    report = check_layer(FACTORIES[op], op, cases=12, seed=1, dtype=dtype)
+    assert not report.passed, f"{op} in {dtype} now passes: move it out of OPEN_FALSE_ALARMS"
+
+
+@pytest.mark.parametrize("dtype", ["float32", "bfloat16"])
+def test_torch_max_pool_passes_in_a_worker_process(dtype):
+    # SOURCES.md: torch's max-pool backward can corrupt memory when a window covers only padding.
+    # In the worker process such a case is a verdict ("aborted"), and the sweep goes on.
+    report = check_layer(f"{HERE}:max_pool", "max_pool2d", cases=30, seed=2, dtype=dtype)
+    assert len(report.cases) == 30
+    for case in report.failures:
+        assert case.config["padding_only_windows"], case.case_id
+        assert case.status in ("aborted", "failed") and "--case" in case.replay
+    assert sum(case.passed for case in report.cases) >= 25
+
+
+def test_hand_written_conv_passes():
+    report = check_layer("refops.examples.denoiser:tile_conv", "conv2d", cases=40, seed=3,
+                         pins={"padding_mode": "zeros"})
+    report.raise_if_failed()
+
+
+BUGGY_CONVS = [("forward", d) for d in ("kernel_flipped", "padding_on_the_high_side", "dilation_ignored_when_strided",
+                                        "operands_rounded_to_10_bits", "input_changed_in_place", "cross_batch_leak")] \
+    + [("backward", d) for d in ("weight_gradient_scaled", "bias_gradient_from_one_pixel", "one_input_pixel_off",
+                                 "weight_gradient_rounded_to_bfloat16")]
+PINS = {"padding_on_the_high_side": {"padding": 1, "padding_mode": "zeros"},
+        "dilation_ignored_when_strided": {"dilation": 2, "stride": 2, "padding_mode": "zeros"},
+        "bias_gradient_from_one_pixel": {"bias": True}}
+
+
+@pytest.mark.parametrize("where, defect", BUGGY_CONVS, ids=[d for _, d in BUGGY_CONVS])
+def test_buggy_convolutions_are_caught(where, defect):
+    cls = ForwardDefect if where == "forward" else BackwardDefect
+    report = check_layer(functools.partial(cls, defect), "conv2d", cases=20, seed=4,
+                         pins=PINS.get(defect))
+    assert not report.passed, f"{defect} was not caught"
+    assert len(report.failures) >= 5
+
+
+def test_max_pool_duplicating_the_gradient_on_ties_is_caught():
+    report = check_layer(TiedMaxPool, "max_pool2d", cases=12, seed=5,
+                         pins={"padding": 0, "ceil_mode": False, "dilation": 1})
+    failing = {c.tensor for case in report.failures for c in case.comparisons if not c.passed}
+    assert failing == {"input"}
+    assert {case.values for case in report.failures} >= {"ties"}
+
+
+def test_overflowing_softplus_is_caught_on_large_inputs():
+    report = check_layer(OverflowingSoftplus, "softplus", cases=12, seed=6)
+    large = [case for case in report.cases if case.values == "large"]
+    assert large and all(not case.passed for case in large)
+    # log(1 + exp(x)) also loses the small tail (1 + tiny rounds to 1), hence other families fail too.
+    assert any(c.nonfinite_mismatches for case in large for c in case.comparisons)
+
+
+def test_declared_deviation_is_listed_when_applied():
+    report = check_layer(torch.nn.Conv2d, "conv2d", cases=6, seed=7, dtype="float16")
+    assert report.passed and any("float16" in d and "weight" in d for d in report.deviations)
+    strict = check_layer(torch.nn.Conv2d, "conv2d", cases=30, seed=7, dtype="float16", use_deviations=False)
+    assert not strict.passed  # the deviation is real: without it torch's float16 sums are flagged

@@ -1,0 +1,71 @@
+"""The command line as a user runs it: exit codes, JSON, JUnit, pins, replay, the op listing."""
+import json
+import subprocess
+import sys
+import xml.etree.ElementTree as ET
+
+import pytest
+
+LAYERS = "tests/harness/torch_layers.py"
+
+
+def refops(*args, cwd=None):
+    return subprocess.run([sys.executable, "-m", "refops.cli", *args], capture_output=True, text=True,
+                          timeout=300, cwd=cwd)
+
+
+def test_passing_check_exits_0_and_writes_json_and_junit(tmp_path):
+    run = refops("check", f"{LAYERS}:relu", "--op", "relu", "--cases", "8", "--json", str(tmp_path / "r.json"),
+                 "--junit", str(tmp_path / "r.xml"), "--quiet")
+    assert run.returncode == 0, run.stdout + run.stderr
+    data = json.loads((tmp_path / "r.json").read_text())
+    assert data["passed"] is True and data["cases"] == 8 and data["failures"] == []
+    suite = ET.parse(tmp_path / "r.xml").getroot()
+    assert suite.tag == "testsuite" and suite.get("tests") == "8" and suite.get("failures") == "0"
+    assert "evidence, not proof" in run.stdout
+
+
+def test_failing_check_exits_1_with_configs_and_a_replay_that_reproduces(tmp_path):
+    run = refops("check", "refops.examples.denoiser:tile_conv_slipped", "--op", "conv2d", "--cases", "6",
+                 "--set", "padding=same", "--set", "padding_mode=zeros", "--set", "stride=1", "--set", "kernel_size=2",
+                 "--json", str(tmp_path / "r.json"))
+    assert run.returncode == 1, run.stdout + run.stderr
+    data = json.loads((tmp_path / "r.json").read_text())
+    failure = data["failures"][0]
+    assert failure["config"]["padding"] == "same" and failure["config"]["kernel_size"] in (2, [2, 2])
+    assert any(t["tensor"] == "input" and t["violations"] > 0 for t in failure["tensors"])
+    replay = failure["replay"].split()[2:]  # drop "refops check"
+    again = refops("check", *replay, "--json", str(tmp_path / "one.json"))
+    assert again.returncode == 1
+    one = json.loads((tmp_path / "one.json").read_text())
+    assert one["cases"] == 1 and one["failures"][0]["case_id"] == failure["case_id"]
+
+
+@pytest.mark.parametrize("args, message", [
+    (["check", "no.such.module:f", "--op", "relu"], "importing no.such.module failed"),
+    (["check", f"{LAYERS}:relu", "--op", "rellu"], "no op of that name; did you mean relu"),
+    (["check", f"{LAYERS}:relu", "--op", "relu", "--set", "kernel_size=3"], "has no parameter 'kernel_size'"),
+    (["check", f"{LAYERS}:relu", "--op", "relu", "--set", "oops"], "expected NAME=VALUE"),
+    (["check", f"{LAYERS}:relu", "--op", "relu", "--case", "x"], "expected SEED-INDEX"),
+    (["check", f"{LAYERS}:relu", "--op", "relu", "--device", "cuda"], "no CUDA device"),
+    (["check", f"{LAYERS}:relu", "--op", "relu", "--dtype", "float8"], "invalid choice"),
+], ids=["bad-target", "unknown-op", "unknown-pin", "malformed-pin", "bad-case-id", "no-cuda", "bad-dtype"])
+def test_unusable_commands_exit_2_with_a_message(args, message):
+    run = refops(*args)
+    assert run.returncode == 2
+    assert message in run.stderr
+
+
+def test_pins_are_read_as_json_or_plain_strings(tmp_path):
+    run = refops("check", "refops.examples.denoiser:tile_conv", "--op", "conv2d", "--cases", "4",
+                 "--set", "kernel_size=[1, 3]", "--set", "padding_mode=zeros", "--set", "bias=false",
+                 "--json", str(tmp_path / "r.json"), "--html", str(tmp_path / "r.html"))
+    assert run.returncode == 0, run.stdout + run.stderr
+    assert "HTML report written to" in run.stdout and (tmp_path / "r.html").stat().st_size > 1000
+
+
+def test_ops_listing_shows_formula_and_output_shape():
+    run = refops("ops", "conv2d", "softmax")
+    assert run.returncode == 0
+    assert "conv2d(input, weight, bias=None; stride=1" in run.stdout
+    assert "Output shape:" in run.stdout and "softmax(input; dim)" in run.stdout
