@@ -105,6 +105,39 @@ def _check(args: argparse.Namespace) -> int:
     return 0 if report.passed else 1
 
 
+DEMO_PINS = {"padding": "same", "stride": 1, "padding_mode": "zeros"}
+
+
+def _demo(args: argparse.Namespace) -> int:
+    """Check the demo port's correct and slipped convolutions; the slip must be caught."""
+    from pathlib import Path
+    from .harness import check_layer
+    from .report.html import write_html
+    from .report.text import render_text
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    print("Demo: a team ports its residual denoiser for greyscale microscope tiles to a new accelerator.\n"
+          "Its hand-written convolution (forward and backward) is checked in the configurations the\n"
+          "denoiser uses (padding='same', stride 1, zero padding) against refops's float64 oracle.\n")
+    verdicts = {}
+    for name in ("tile_conv", "tile_conv_slipped"):
+        progress = _Progress(not args.quiet)
+        try:
+            report = check_layer(f"refops.examples.denoiser:{name}", "conv2d", cases=args.cases, seed=0,
+                                 pins=DEMO_PINS, progress=progress)
+        finally:
+            progress.close()
+        print(f"=== refops.examples.denoiser:{name}")
+        print(render_text(report, max_cases=2))
+        path = write_html(report, out / f"{name}.html")
+        print(f"HTML report written to {path}\n")
+        verdicts[name] = report.passed
+    caught = verdicts["tile_conv"] and not verdicts["tile_conv_slipped"]
+    print("The correct layer passed and the slipped one was caught." if caught
+          else "Unexpected: the demo did not separate the correct layer from the slipped one.")
+    return 0 if caught else 1
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="refops", description=__doc__)
     commands = parser.add_subparsers(dest="command", required=True)
@@ -131,6 +164,12 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("--markdown", metavar="PATH", help="write a Markdown summary")
     check.add_argument("--quiet", action="store_true", help="no progress bar")
     check.set_defaults(run=_check)
+
+    demo = commands.add_parser("demo", help="watch refops catch a padding slip in a hand-written convolution")
+    demo.add_argument("--out", default="refops-demo", help="folder for the HTML reports (default refops-demo)")
+    demo.add_argument("--cases", type=int, default=30)
+    demo.add_argument("--quiet", action="store_true")
+    demo.set_defaults(run=_demo)
     return parser
 
 

@@ -69,3 +69,12 @@ def test_ops_listing_shows_formula_and_output_shape():
     assert run.returncode == 0
     assert "conv2d(input, weight, bias=None; stride=1" in run.stdout
     assert "Output shape:" in run.stdout and "softmax(input; dim)" in run.stdout
+
+
+def test_demo_passes_the_correct_layer_and_catches_the_slip(tmp_path):
+    run = refops("demo", "--out", str(tmp_path / "demo"), "--quiet")
+    assert run.returncode == 0, run.stdout + run.stderr
+    assert "The correct layer passed and the slipped one was caught." in run.stdout
+    correct, slipped = run.stdout.split("=== refops.examples.denoiser:tile_conv_slipped")
+    assert "  PASSED" in correct and "  FAILED" in slipped and "input:" in slipped
+    assert (tmp_path / "demo" / "tile_conv.html").exists() and (tmp_path / "demo" / "tile_conv_slipped.html").exists()
