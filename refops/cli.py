@@ -62,6 +62,42 @@ class _Progress:
             self.bar.stop()
 
 
+def _shard(text: str) -> tuple[int, int]:
+    """``I/N`` (1-based I) -> ``(I - 1, N)``."""
+    try:
+        part, parts = (int(v) for v in text.split("/"))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"--shard {text!r}: expected I/N, e.g. 2/4") from None
+    if not 1 <= part <= parts:
+        raise argparse.ArgumentTypeError(f"--shard {text!r}: needs 1 <= I <= N")
+    return part - 1, parts
+
+
+def _merge(args: argparse.Namespace) -> int:
+    """Merge JSON reports of shards into one."""
+    reports = []
+    for path in args.reports:
+        try:
+            with open(path, encoding="utf-8") as stream:
+                reports.append(json.load(stream))
+        except (OSError, json.JSONDecodeError) as error:
+            print(f"refops merge: {path}: {error}", file=sys.stderr)
+            return 2
+    merged = {**reports[0], "cases": sum(r["cases"] for r in reports),
+              "failures": [f for r in reports for f in r["failures"]],
+              "deviations": sorted({d for r in reports for d in r.get("deviations", [])}),
+              "summary": {}}
+    for r in reports:
+        for status, count in r.get("summary", {}).items():
+            merged["summary"][status] = merged["summary"].get(status, 0) + count
+    merged["passed"] = all(r["passed"] for r in reports)
+    with open(args.output, "w", encoding="utf-8") as stream:
+        json.dump(merged, stream, indent=1)
+    print(f"merged {len(reports)} reports: {merged['cases']} cases, "
+          f"{'passed' if merged['passed'] else str(len(merged['failures'])) + ' failing'}")
+    return 0 if merged["passed"] else 1
+
+
 def _check(args: argparse.Namespace) -> int:
     from .harness import check_layer
     from .harness.subject import TargetError, load_factory
@@ -83,7 +119,8 @@ def _check(args: argparse.Namespace) -> int:
         report = check_layer(args.target, args.op, cases=args.cases, seed=args.seed, dtype=args.dtype,
                              pins=dict(args.set), layout=args.layout, device=args.device,
                              timeout=args.timeout, budget=args.budget,
-                             case_ids=[args.case] if args.case else None, progress=progress)
+                             case_ids=[args.case] if args.case else None, progress=progress,
+                             shard=args.shard)
     except (PinError, ValueError, RuntimeError) as error:
         print(f"refops check: {error}", file=sys.stderr)
         return 2
@@ -162,8 +199,15 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("--junit", metavar="PATH", help="write JUnit XML")
     check.add_argument("--html", metavar="PATH", help="write a self-contained HTML report")
     check.add_argument("--markdown", metavar="PATH", help="write a Markdown summary")
+    check.add_argument("--shard", type=_shard, default=(0, 1), metavar="I/N",
+                       help="run the I-th of N deterministic shares of the cases (1-based)")
     check.add_argument("--quiet", action="store_true", help="no progress bar")
     check.set_defaults(run=_check)
+
+    merge = commands.add_parser("merge", help="merge JSON reports of shards into one")
+    merge.add_argument("reports", nargs="+")
+    merge.add_argument("-o", "--output", required=True)
+    merge.set_defaults(run=_merge)
 
     demo = commands.add_parser("demo", help="watch refops catch a padding slip in a hand-written convolution")
     demo.add_argument("--out", default="refops-demo", help="folder for the HTML reports (default refops-demo)")

@@ -78,3 +78,16 @@ def test_demo_passes_the_correct_layer_and_catches_the_slip(tmp_path):
     correct, slipped = run.stdout.split("=== refops.examples.denoiser:tile_conv_slipped")
     assert "  PASSED" in correct and "  FAILED" in slipped and "input:" in slipped
     assert (tmp_path / "demo" / "tile_conv.html").exists() and (tmp_path / "demo" / "tile_conv_slipped.html").exists()
+
+
+def test_shards_cover_the_unsharded_run_and_merge(tmp_path):
+    common = ["check", "refops.examples.denoiser:tile_conv_slipped", "--op", "conv2d", "--cases", "9",
+              "--set", "padding_mode=zeros", "--set", "padding=same", "--set", "stride=1", "--quiet"]
+    refops(*common, "--json", str(tmp_path / "all.json"))
+    for i in (1, 2, 3):
+        refops(*common, "--shard", f"{i}/3", "--json", str(tmp_path / f"s{i}.json"))
+    run = refops("merge", *(str(tmp_path / f"s{i}.json") for i in (1, 2, 3)), "-o", str(tmp_path / "m.json"))
+    whole, merged = (json.loads((tmp_path / n).read_text()) for n in ("all.json", "m.json"))
+    assert merged["cases"] == whole["cases"] == 9
+    assert sorted(f["case_id"] for f in merged["failures"]) == sorted(f["case_id"] for f in whole["failures"])
+    assert merged["passed"] is whole["passed"] is False and run.returncode == 1

@@ -175,13 +175,15 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
                 pins: Mapping[str, Any] | None = None, layout: str = "contiguous", device: str = "cpu",
                 timeout: float = 60.0, budget: float | None = None, model=None,
                 case_ids: list[str] | None = None, use_deviations: bool = True,
+                shard: tuple[int, int] = (0, 1),
                 progress: Callable[[int, int], None] | None = None) -> Report:
     """Check a subject against the oracle ``op`` over drawn cases; returns a :class:`Report`.
 
     ``target`` is ``"package.module:attr"`` / ``"path/file.py:attr"`` (run in a worker process, so a
     crash of the subject is a verdict) or a factory callable (run in this process). The factory
     receives the op's layer configuration as keyword arguments and returns a torch module (or a
-    callable on tensors). ``pins`` fixes configuration values; ``case_ids`` replays given cases.
+    callable on tensors). ``pins`` fixes configuration values; ``case_ids`` replays given cases;
+    ``shard=(I, N)`` runs the cases whose index is I modulo N (a CI matrix over N machines).
     """
     from .subject import LAYOUTS, run_subject
     from .worker import Worker
@@ -196,7 +198,11 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
     model = model or RoundingBound(floor=get_format(dtype).tiny)
     name = target if isinstance(target, str) else getattr(target, "__qualname__", repr(target))
     report = Report(op=op, target=name, dtype=dtype, seed=seed, model=model.describe())
-    plan = [parse_case_id(c) for c in case_ids] if case_ids else [(seed, i) for i in range(cases)]
+    part, parts = shard
+    if not (isinstance(parts, int) and isinstance(part, int) and 0 <= part < parts):
+        raise ValueError(f"shard={shard!r}: expected (I, N) with 0 <= I < N")
+    plan = [parse_case_id(c) for c in case_ids] if case_ids else \
+        [(seed, i) for i in range(cases) if i % parts == part]
     drawn = [draw_case(oracle, s, i, dtype, pins) for s, i in plan]  # bad pins fail before any run
     worker = Worker(target, timeout) if isinstance(target, str) else None
     applied: set[str] = set()
