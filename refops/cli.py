@@ -98,6 +98,41 @@ def _merge(args: argparse.Namespace) -> int:
     return 0 if merged["passed"] else 1
 
 
+def _record(args: argparse.Namespace) -> int:
+    from .harness.replay import record_model
+    from .harness.subject import TargetError
+    try:
+        shapes = [tuple(int(n) for n in text.split(",")) for text in args.input_shape]
+    except ValueError:
+        print(f"refops record: --input-shape {args.input_shape}: expected comma-separated sizes, e.g. 2,1,16,16",
+              file=sys.stderr)
+        return 2
+    try:
+        path = record_model(args.target, shapes, args.output, dtype=args.dtype, seed=args.seed)
+    except (TargetError, ValueError, RuntimeError) as error:
+        print(f"refops record: {error}", file=sys.stderr)
+        return 2
+    print(f"bundle written to {path}")
+    return 0
+
+
+def _replay_bundle(args: argparse.Namespace) -> int:
+    from .golden import BundleError
+    from .harness.replay import replay_model
+    from .harness.subject import TargetError
+    from .report.text import render_text
+    try:
+        report = replay_model(args.target, args.bundle, dtype=args.dtype, factor=args.factor)
+    except (TargetError, BundleError, ValueError) as error:
+        print(f"refops replay: {error}", file=sys.stderr)
+        return 2
+    print(render_text(report))
+    if args.json:
+        with open(args.json, "w", encoding="utf-8") as stream:
+            json.dump(report.to_json(), stream, indent=1)
+    return 0 if report.passed else 1
+
+
 def _check(args: argparse.Namespace) -> int:
     from .harness import check_layer
     from .harness.subject import TargetError, load_factory
@@ -208,6 +243,22 @@ def build_parser() -> argparse.ArgumentParser:
     merge.add_argument("reports", nargs="+")
     merge.add_argument("-o", "--output", required=True)
     merge.set_defaults(run=_merge)
+
+    record = commands.add_parser("record", help="record a trusted run of a model as a bundle")
+    record.add_argument("target", help="a factory called with no arguments that returns the model")
+    record.add_argument("--input-shape", action="append", required=True, help="e.g. 2,1,16,16; repeatable")
+    record.add_argument("-o", "--output", required=True, help="bundle folder (must not exist or be empty)")
+    record.add_argument("--dtype", default="float32", choices=["float64", "float32", "float16", "bfloat16"])
+    record.add_argument("--seed", type=int, default=0)
+    record.set_defaults(run=_record)
+
+    replay = commands.add_parser("replay", help="run a model on a recorded bundle and compare")
+    replay.add_argument("target")
+    replay.add_argument("bundle")
+    replay.add_argument("--dtype", help="default: the recorded format")
+    replay.add_argument("--factor", type=float, default=4.0, help="headroom over the trusted run's error")
+    replay.add_argument("--json", metavar="PATH")
+    replay.set_defaults(run=_replay_bundle)
 
     demo = commands.add_parser("demo", help="watch refops catch a padding slip in a hand-written convolution")
     demo.add_argument("--out", default="refops-demo", help="folder for the HTML reports (default refops-demo)")

@@ -20,7 +20,8 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 
-__all__ = ["tile_conv", "tile_conv_slipped", "TileConv", "TileDenoiser", "synthetic_tiles"]
+__all__ = ["tile_conv", "tile_conv_slipped", "TileConv", "TileDenoiser", "synthetic_tiles", "denoiser",
+           "denoiser_slipped"]
 
 
 def _pairs(padding, kernel, dilation) -> tuple[tuple[int, int], tuple[int, int]]:
@@ -129,3 +130,15 @@ def synthetic_tiles(count: int = 4, size: int = 16, *, seed: int = 0) -> np.ndar
             cy, cx, width = rng.uniform(0.2, 0.8), rng.uniform(0.2, 0.8), rng.uniform(0.05, 0.2)
             tile[0] += np.exp(-((yy - cy) ** 2 + (xx - cx) ** 2) / (2 * width ** 2))
     return tiles + 0.05 * rng.standard_normal(tiles.shape)
+
+
+def denoiser() -> TileDenoiser:
+    """Factory for ``refops record`` / ``refops replay``: the port's denoiser, fixed initial weights."""
+    torch.manual_seed(0)
+    return TileDenoiser()
+
+
+def denoiser_slipped() -> TileDenoiser:
+    """The same denoiser built on the slipped convolution."""
+    torch.manual_seed(0)
+    return TileDenoiser(slipped=True)
