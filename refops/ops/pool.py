@@ -92,7 +92,7 @@ class _FixedWindows(_Windows):
     def gather(self, x: np.ndarray, fill: float) -> np.ndarray:
         padded = _window.pad(x, self.pairs, value=fill)
         view = _window.windows(padded, self.kernel, self.stride, self.dilation)
-        return view.reshape(view.shape[:view.ndim - len(self.kernel)] + (math.prod(self.kernel),))
+        return view.reshape(view.shape[:view.ndim - len(self.kernel)] + (self.taps,))
 
     def scatter(self, cols: np.ndarray) -> np.ndarray:
         blocks = cols.reshape(cols.shape[:-1] + self.kernel)
@@ -337,10 +337,8 @@ def _fixed_config(draw, *, dilated: bool) -> tuple[dict, dict]:
 
 def _covers_only_padding(shape: tuple[int, ...], layer: dict) -> bool:
     """Whether some window has no tap on the input (max value -inf, no gradient)."""
-    normal = _check_fixed(np.zeros(shape), {"stride": None, "padding": 0, "ceil_mode": False,
-                                            **layer}, 2)
-    windows = _FixedWindows(shape[-2:], normal["kernel_size"], normal["stride"], normal["padding"],
-                            normal["dilation"], normal["ceil_mode"])
+    x = np.zeros(shape)
+    windows = _FixedWindows.over(x, **_check_fixed(x, dict(layer), 2))
     return bool(np.any(windows.taps_inside() == 0))
 
 
