@@ -1,30 +1,64 @@
 """A worker process that runs subjects, so that a crash inside a native kernel is a verdict.
 
-The worker loads the TARGET once and then serves one case per message. If it dies (a segfault,
-an abort, heap corruption) or a case runs past the time limit, the parent reports that case and
-starts a fresh worker for the next one.
+The worker (``python -m refops.harness.worker TARGET``) loads the TARGET once and then serves one
+case per message: length-prefixed pickles over its stdin and a private copy of its stdout (the
+subject's own prints go to stderr). It is a fresh interpreter, so the caller's main script is
+never re-run. If the worker dies (a segfault, an abort, heap corruption) or a case runs past the
+time limit, the parent reports that case and starts a fresh worker for the next one.
 """
 from __future__ import annotations
 
-import multiprocessing
-from typing import Any
+import os
+import pickle
+import select
+import struct
+import subprocess
+import sys
+from typing import Any, BinaryIO
+
+_HEADER = struct.Struct("<Q")
 
 
-def _serve(connection, target: str) -> None:
+def _send(stream: BinaryIO, message: Any) -> None:
+    payload = pickle.dumps(message, protocol=pickle.HIGHEST_PROTOCOL)
+    stream.write(_HEADER.pack(len(payload)) + payload)
+    stream.flush()
+
+
+def _read_exactly(stream: BinaryIO, size: int) -> bytes:
+    data = b""
+    while len(data) < size:
+        chunk = stream.read(size - len(data))
+        if not chunk:
+            raise EOFError("the worker closed its output")
+        data += chunk
+    return data
+
+
+def _receive(stream: BinaryIO) -> Any:
+    (size,) = _HEADER.unpack(_read_exactly(stream, _HEADER.size))
+    return pickle.loads(_read_exactly(stream, size))
+
+
+def _serve(target: str) -> None:
+    replies = os.fdopen(os.dup(1), "wb")
+    os.dup2(2, 1)  # the subject's prints must not reach the protocol stream
+    requests = sys.stdin.buffer
     from .subject import load_factory, run_subject
     import torch
     torch.set_num_threads(1)
     try:
         factory = load_factory(target)
     except Exception as error:
-        connection.send({"ready": False, "error": str(error)})
+        _send(replies, {"ready": False, "error": str(error)})
         return
-    connection.send({"ready": True})
+    _send(replies, {"ready": True})
     while True:
-        job = connection.recv()
-        if job is None:
+        try:
+            job = _receive(requests)
+        except EOFError:
             return
-        connection.send(run_subject(factory, job))
+        _send(replies, run_subject(factory, job))
 
 
 class Worker:
@@ -34,41 +68,50 @@ class Worker:
 
     def __init__(self, target: str, timeout: float):
         self.target, self.timeout = target, timeout
-        self._context = multiprocessing.get_context("spawn")
-        self._process = None
+        self._process: subprocess.Popen | None = None
+
+    def _wait_readable(self, seconds: float) -> bool:
+        ready, _, _ = select.select([self._process.stdout], [], [], seconds)
+        return bool(ready)
 
     def _start(self) -> None:
-        parent, child = self._context.Pipe()
-        self._process = self._context.Process(target=_serve, args=(child, self.target), daemon=True)
-        self._process.start()
-        child.close()
-        self._connection = parent
-        if not parent.poll(self.START_TIMEOUT):
+        self._process = subprocess.Popen([sys.executable, "-m", "refops.harness.worker", self.target],
+                                         stdin=subprocess.PIPE, stdout=subprocess.PIPE, cwd=os.getcwd())
+        if not self._wait_readable(self.START_TIMEOUT):
             self.close()
             raise RuntimeError("the worker process did not start")
-        hello = parent.recv()
+        try:
+            hello = _receive(self._process.stdout)
+        except EOFError:
+            self.close()
+            raise RuntimeError("the worker process exited while starting") from None
         if not hello["ready"]:
             self.close()
             raise RuntimeError(hello["error"])
 
     def run(self, job: dict) -> dict[str, Any]:
-        if self._process is None or not self._process.is_alive():
+        if self._process is None or self._process.poll() is not None:
             self._start()
         try:
-            self._connection.send(job)
-            if not self._connection.poll(self.timeout):
+            _send(self._process.stdin, job)
+            if not self._wait_readable(self.timeout):
                 self.close()
-                return {"fault": "timeout",
-                        "error": f"the subject ran past the time limit of {self.timeout:g} s"}
-            return self._connection.recv()
+                return {"fault": "timeout", "error": f"the subject ran past the time limit of {self.timeout:g} s"}
+            return _receive(self._process.stdout)
         except (EOFError, BrokenPipeError, ConnectionResetError):
-            code = self._process.exitcode if self._process is not None else None
+            code = self._process.wait(5)
             self.close()
             return {"fault": "aborted", "error": f"the subject aborted the process (exit code {code})"}
 
     def close(self) -> None:
         if self._process is not None:
-            if self._process.is_alive():
+            if self._process.poll() is None:
                 self._process.kill()
-            self._process.join(5)
+            self._process.wait(5)
+            for stream in (self._process.stdin, self._process.stdout):
+                stream.close()
         self._process = None
+
+
+if __name__ == "__main__":
+    _serve(sys.argv[1])
