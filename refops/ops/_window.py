@@ -73,33 +73,58 @@ def _source_index(size: int, low: int, high: int, mode: str) -> np.ndarray:
 
 
 def pad(x: np.ndarray, pairs: Sequence[tuple[int, int]], mode: str = "zeros",
-        value: float = 0.0) -> np.ndarray:
-    """Pad the trailing ``len(pairs)`` dims of ``x``; ``"zeros"`` pads with ``value``."""
-    if all(lo == 0 and hi == 0 for lo, hi in pairs):
-        return x
+        value: float = 0.0, *, out: np.ndarray | None = None) -> np.ndarray:
+    """Pad the trailing ``len(pairs)`` dims of ``x``; ``"zeros"`` pads with ``value``.
+
+    Without ``out`` an unpadded ``x`` comes back as it is (no copy). With ``out`` (the padded
+    shape) the result is written there: for ``"zeros"`` one copy of ``x`` into the interior and
+    ``value`` into the border, no temporary, so a scratch buffer can be reused chunk after chunk.
+    """
     lead = x.ndim - len(pairs)
-    if mode == "zeros":
-        return np.pad(x, [(0, 0)] * lead + list(pairs), constant_values=value)
-    for axis, (lo, hi) in enumerate(pairs, start=lead):
-        x = x.take(_source_index(x.shape[axis], lo, hi, mode), axis=axis)
-    return x
+    if out is None and all(lo == 0 and hi == 0 for lo, hi in pairs):
+        return x
+    if mode != "zeros":
+        for axis, (lo, hi) in enumerate(pairs, start=lead):
+            x = x.take(_source_index(x.shape[axis], lo, hi, mode), axis=axis)
+        return x if out is None else _copied(out, x)
+    if out is None:
+        out = np.empty(x.shape[:lead] + tuple(n + lo + hi for n, (lo, hi) in zip(x.shape[lead:], pairs)))
+    interior = tuple(slice(lo, lo + n) for n, (lo, _) in zip(x.shape[lead:], pairs))
+    out[(Ellipsis, *interior)] = x
+    for axis, (lo, hi) in enumerate(pairs):
+        before = (slice(None),) * lead + interior[:axis]  # border slabs, each element written once
+        out[(*before, slice(0, lo))] = value
+        out[(*before, slice(lo + x.shape[lead + axis], None))] = value
+    return out
 
 
-def unpad(g: np.ndarray, pairs: Sequence[tuple[int, int]], mode: str = "zeros") -> np.ndarray:
-    """The adjoint of :func:`pad`: the gradient with respect to the unpadded array."""
+def _copied(out: np.ndarray, x: np.ndarray) -> np.ndarray:
+    np.copyto(out, x)
+    return out
+
+
+def unpad(g: np.ndarray, pairs: Sequence[tuple[int, int]], mode: str = "zeros", *,
+          out: np.ndarray | None = None) -> np.ndarray:
+    """The adjoint of :func:`pad`: the gradient with respect to the unpadded array.
+
+    ``"zeros"`` crops every axis with one slice and one copy (into ``out`` when given); the other
+    modes add each padded position back onto the input position it copied, axis by axis.
+    """
     lead = g.ndim - len(pairs)
+    if mode == "zeros":
+        inner = g[(Ellipsis, *(slice(lo, n - hi) for n, (lo, hi) in zip(g.shape[lead:], pairs)))]
+        return inner.copy() if out is None else _copied(out, inner)
     for axis, (lo, hi) in enumerate(pairs, start=lead):
         if lo == 0 and hi == 0:
             continue
         size = g.shape[axis] - lo - hi
         moved = np.moveaxis(g, axis, 0)
         inner = moved[lo:lo + size].copy()
-        if mode != "zeros":
-            source = _source_index(size, lo, hi, mode)
-            for j in itertools.chain(range(lo), range(lo + size, lo + size + hi)):
-                inner[source[j]] += moved[j]
+        source = _source_index(size, lo, hi, mode)
+        for j in itertools.chain(range(lo), range(lo + size, lo + size + hi)):
+            inner[source[j]] += moved[j]
         g = np.moveaxis(inner, 0, axis)
-    return g
+    return g if out is None else _copied(out, g)
 
 
 def windows(x: np.ndarray, kernel: Sequence[int], stride: Sequence[int],
@@ -121,21 +146,24 @@ def windows(x: np.ndarray, kernel: Sequence[int], stride: Sequence[int],
 
 
 def fold(cols: np.ndarray, spatial: Sequence[int], stride: Sequence[int],
-         dilation: Sequence[int]) -> np.ndarray:
+         dilation: Sequence[int], *, out: np.ndarray | None = None) -> np.ndarray:
     """Adjoint of :func:`windows`: scatter-add ``(..., *out, *kernel)`` onto ``(..., *spatial)``.
 
     One strided add per kernel offset, each vectorised over everything else; positions that no
-    window covers stay zero.
+    window covers stay zero. ``out`` (shape ``(..., *spatial)``) receives the result when given.
     """
     n = len(spatial)
     lead = cols.shape[:cols.ndim - 2 * n]
-    out = cols.shape[cols.ndim - 2 * n:cols.ndim - n]
+    windows_out = cols.shape[cols.ndim - 2 * n:cols.ndim - n]
     kernel = cols.shape[cols.ndim - n:]
-    result = np.zeros(lead + tuple(spatial), dtype=cols.dtype)
-    if 0 in out:
-        return result
+    if out is None:
+        out = np.zeros(lead + tuple(spatial), dtype=cols.dtype)
+    else:
+        out[...] = 0.0
+    if 0 in windows_out:
+        return out
     for offset in np.ndindex(*kernel):
         target = tuple(slice(j * d, j * d + (m - 1) * s + 1, s)
-                       for j, d, m, s in zip(offset, dilation, out, stride))
-        result[(Ellipsis, *target)] += cols[(Ellipsis, *(slice(None),) * n, *offset)]
-    return result
+                       for j, d, m, s in zip(offset, dilation, windows_out, stride))
+        out[(Ellipsis, *target)] += cols[(Ellipsis, *(slice(None),) * n, *offset)]
+    return out

@@ -19,9 +19,11 @@ Every map works through the batch in chunks so that its scratch memory stays bel
 from __future__ import annotations
 
 import math
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import partial
-from typing import Iterator
+from typing import Callable, Iterator
 
 import numpy as np
 
@@ -78,10 +80,11 @@ class _Geometry:
                      for o, s, d, k in zip(self.out, self.stride, self.dilation, self.kernel))
 
     def per_sample_bytes(self, channels: int, out_channels: int) -> int:
-        """Scratch per sample: the im2col block, padded copies, the per-sample weight products."""
+        """Scratch per sample: the im2col block, the padded copy (with a non-zero padding mode also
+        the two gathers that make it), the per-sample weight products."""
         block = channels * math.prod(self.kernel) * math.prod(self.out)
-        padded = channels * math.prod(self.padded)
-        return 8 * (block + 3 * padded + out_channels * channels // self.groups * math.prod(self.kernel))
+        padded = channels * math.prod(self.padded) * (1 if self.mode == "zeros" else 3)
+        return 8 * (block + padded + out_channels * channels // self.groups * math.prod(self.kernel))
 
 
 def _conv_geometry(input_shape, weight_shape, *, stride, padding, dilation, groups,
@@ -102,30 +105,113 @@ def _transpose_geometry(input_shape, weight_shape, *, stride, padding, output_pa
     return _Geometry(spatial, padding, kernel, stride, dilation, groups, "zeros", out)
 
 
-def _chunks(total: int, per_sample: int) -> Iterator[slice]:
-    size = max(1, _memory_limit // max(per_sample, 1))
+def _chunks(total: int, size: int) -> Iterator[slice]:
     for start in range(0, total, size):
         yield slice(start, min(start + size, total))
+
+
+def _chunk_size(per_sample: int) -> int:
+    """Samples per chunk: within the memory bound and within :data:`_WORKING_SET`, at least one."""
+    return max(1, min(_memory_limit, _WORKING_SET) // max(per_sample, 1))
+
+
+# ---------------------------------------------------------------------------------------------
+# memory-bound passes on all cores
+
+_WORKING_SET = 16 * 2 ** 20  # chunks this small stay in the last-level cache between passes
+_PARALLEL_BYTES = 2 ** 20  # below this a pass runs in the calling thread
+_pool: ThreadPoolExecutor | None = None
+
+
+def _workers() -> int:
+    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1
+
+
+def _in_parallel(task: Callable[[tuple], None], lead: tuple[int, int], nbytes: int) -> None:
+    """Run ``task(index)`` on disjoint pieces of the leading ``(batch, channels)`` axes.
+
+    numpy releases the GIL in copies and ufunc loops, so the pieces of a memory-bound pass run on
+    all cores while BLAS is idle; a pass smaller than ``_PARALLEL_BYTES`` runs here.
+    """
+    global _pool
+    workers = _workers()
+    if workers == 1 or nbytes < _PARALLEL_BYTES or max(lead) == 1:
+        task((slice(None),))
+        return
+    axis = 0 if lead[0] >= workers or lead[0] >= lead[1] else 1
+    bounds = np.linspace(0, lead[axis], min(workers, lead[axis]) + 1).astype(int)
+    pieces = [(slice(None),) * axis + (slice(a, b),) for a, b in zip(bounds[:-1], bounds[1:])]
+    if _pool is None:
+        _pool = ThreadPoolExecutor(workers, thread_name_prefix="refops-conv")
+    for done in [_pool.submit(task, piece) for piece in pieces]:
+        done.result()
+
+
+class _Blocks:
+    """Scratch reused by every chunk of one map: the padded chunk and its im2col block.
+
+    ``cols(b)`` is the block of the first ``b`` samples as ``(b, groups, C/groups * prod(kernel),
+    prod(out))``; :meth:`im2col` fills it from an input chunk, :meth:`col2im` scatters it back.
+    """
+
+    def __init__(self, geo: _Geometry, channels: int, samples: int):
+        self.geo = geo
+        self.padded = (np.empty((samples, channels) + geo.padded)
+                       if any(lo or hi for lo, hi in geo.pairs) else None)
+        self.block = np.empty((samples, channels) + geo.kernel + geo.out)
+
+    def cols(self, b: int) -> np.ndarray:
+        return self.block[:b].reshape(b, self.geo.groups, -1, math.prod(self.geo.out))
+
+    def _by_window(self, b: int) -> np.ndarray:
+        """The block as ``(b, C, *out, *kernel)``, the layout of :func:`_window.windows`."""
+        n = len(self.geo.kernel)
+        return self.block[:b].transpose(0, 1, *range(2 + n, 2 + 2 * n), *range(2, 2 + n))
+
+    def _padded(self, b: int, index: tuple) -> np.ndarray | None:
+        return None if self.padded is None else self.padded[:b][index]
+
+    def im2col(self, x: np.ndarray) -> np.ndarray:
+        """Pad ``x`` and copy its windows into the block; returns ``cols(len(x))``."""
+        b, geo = x.shape[0], self.geo
+        cols = self._by_window(b)
+
+        def fill(index: tuple) -> None:
+            padded = _window.pad(x[index], geo.pairs, geo.mode, out=self._padded(b, index))
+            read = padded[(Ellipsis, *(slice(0, e) for e in geo.extent))]
+            np.copyto(cols[index], _window.windows(read, geo.kernel, geo.stride, geo.dilation))
+
+        _in_parallel(fill, x.shape[:2], cols.nbytes)
+        return self.cols(b)
+
+    def col2im(self, result: np.ndarray) -> None:
+        """Scatter-add the block of ``len(result)`` samples onto the input: fold, then unpad."""
+        b, geo = result.shape[0], self.geo
+        cols = self._by_window(b)
+
+        def scatter(index: tuple) -> None:
+            padded = self._padded(b, index)
+            if padded is None:
+                _window.fold(cols[index], geo.spatial, geo.stride, geo.dilation, out=result[index])
+            else:
+                _window.fold(cols[index], geo.padded, geo.stride, geo.dilation, out=padded)
+                _window.unpad(padded, geo.pairs, geo.mode, out=result[index])
+
+        _in_parallel(scatter, result.shape[:2], cols.nbytes)
 
 
 # ---------------------------------------------------------------------------------------------
 # the three maps
 
-def _im2col(x: np.ndarray, geo: _Geometry) -> np.ndarray:
-    """Contiguous ``(batch, groups, C/groups * prod(kernel), prod(out))`` window blocks of ``x``."""
-    n = len(geo.kernel)
-    padded = _window.pad(x, geo.pairs, geo.mode)
-    padded = padded[(Ellipsis, *(slice(0, e) for e in geo.extent))]
-    view = _window.windows(padded, geo.kernel, geo.stride, geo.dilation)  # (b, C, *out, *kernel)
-    order = (0, 1, *range(2 + n, 2 + 2 * n), *range(2, 2 + n))
-    cols = np.empty(x.shape[:2] + geo.kernel + geo.out)
-    np.copyto(cols, view.transpose(order))
-    return cols.reshape(x.shape[0], geo.groups, -1, math.prod(geo.out))
-
-
 def _grouped(w: np.ndarray, groups: int) -> np.ndarray:
     """The weight as ``(groups, C_out/groups, C_in/groups * prod(kernel))``."""
     return w.reshape(groups, w.shape[0] // groups, -1)
+
+
+def _scratch(geo: _Geometry, batch: int, channels: int, out_channels: int) -> tuple[int, _Blocks]:
+    """The chunk size of a map and its scratch."""
+    size = _chunk_size(geo.per_sample_bytes(channels, out_channels))
+    return size, _Blocks(geo, channels, min(size, batch))
 
 
 def _correlate(x: np.ndarray, w: np.ndarray, geo: _Geometry) -> np.ndarray:
@@ -133,31 +219,59 @@ def _correlate(x: np.ndarray, w: np.ndarray, geo: _Geometry) -> np.ndarray:
     batch, channels = x.shape[:2]
     out = np.empty((batch, w.shape[0]) + geo.out)
     wg = _grouped(w, geo.groups)
-    for part in _chunks(batch, geo.per_sample_bytes(channels, w.shape[0])):
-        # Each chunk's im2col block is freed before the next one is made.
+    size, blocks = _scratch(geo, batch, channels, w.shape[0])
+    for part in _chunks(batch, size):
         target = out[part].reshape(-1, geo.groups, wg.shape[1], math.prod(geo.out))
-        np.matmul(wg, _im2col(x[part], geo), out=target)
+        np.matmul(wg, blocks.im2col(x[part]), out=target)
     return out
 
 
 def _correlate_adjoint(g: np.ndarray, w: np.ndarray, geo: _Geometry) -> np.ndarray:
-    """The adjoint of :func:`_correlate` in ``x``: transposed-weight GEMM, fold, unpad."""
+    """The adjoint of :func:`_correlate` in ``x``.
+
+    With stride 1 and zero padding it is itself a correlation (:func:`_full_correlation`);
+    otherwise a GEMM with the transposed weight, a fold and an unpad.
+    """
+    if geo.mode == "zeros" and all(s == 1 for s in geo.stride):
+        return _full_correlation(g, w, geo)
     batch, channels = g.shape[0], geo.groups * w.shape[1]
     result = np.empty((batch, channels) + geo.spatial)
     wt = _grouped(w, geo.groups).transpose(0, 2, 1)
-    for part in _chunks(batch, geo.per_sample_bytes(channels, w.shape[0])):
-        result[part] = _adjoint_chunk(g[part], wt, geo)
+    size, blocks = _scratch(geo, batch, channels, w.shape[0])
+    for part in _chunks(batch, size):
+        gc = g[part].reshape(-1, geo.groups, wt.shape[2], math.prod(geo.out))
+        np.matmul(wt, gc, out=blocks.cols(gc.shape[0]))
+        blocks.col2im(result[part])
     return result
 
 
-def _adjoint_chunk(g: np.ndarray, wt: np.ndarray, geo: _Geometry) -> np.ndarray:
+def _full_correlation(g: np.ndarray, w: np.ndarray, geo: _Geometry) -> np.ndarray:
+    """Stride-1, zero-padded adjoint: correlate ``g``, padded by ``dilation * (k - 1) - pad_low``
+    below and ``size + pad_low - out`` above (``dilation * (k - 1) - pad_high`` when the windows
+    reach the end of the padded input; a negative amount crops), with the kernel flipped and its
+    channel axes exchanged.
+
+    ``grad_x[n, c, i] = sum_{o, j} w[o, c, j] g[n, o, i + pad_low - j * dilation]``; substituting
+    ``j -> k - 1 - j`` makes it a correlation of that padded ``g`` with stride 1.
+    """
     n = len(geo.kernel)
-    gc = g.reshape(g.shape[0], geo.groups, wt.shape[2], math.prod(geo.out))
-    cols = np.matmul(wt, gc).reshape((g.shape[0], geo.groups * wt.shape[1] // math.prod(geo.kernel))
-                                     + geo.kernel + geo.out)
-    order = (0, 1, *range(2 + n, 2 + 2 * n), *range(2, 2 + n))
-    folded = _window.fold(cols.transpose(order), geo.padded, geo.stride, geo.dilation)
-    return _window.unpad(folded, geo.pairs, geo.mode)
+    reach = [d * (k - 1) for k, d in zip(geo.kernel, geo.dilation)]
+    amounts = [(r - lo, size + lo - out) for r, (lo, _), size, out
+               in zip(reach, geo.pairs, geo.spatial, geo.out)]
+    g = g[(Ellipsis, *(slice(max(0, -lo), size - max(0, -hi))
+                       for size, (lo, hi) in zip(geo.out, amounts)))]
+    pairs = tuple((max(0, lo), max(0, hi)) for lo, hi in amounts)
+    full = _conv_geometry(g.shape, w.shape, stride=(1,) * n, padding=pairs, dilation=geo.dilation,
+                          groups=geo.groups, padding_mode="zeros")
+    return _correlate(g, _flipped_transpose(w, geo.groups), full)
+
+
+def _flipped_transpose(w: np.ndarray, groups: int) -> np.ndarray:
+    """``(C_out, C_in/groups, *k)`` -> ``(C_in, C_out/groups, *k)``, each kernel reversed."""
+    out_channels, in_group, kernel = w.shape[0], w.shape[1], w.shape[2:]
+    swapped = w.reshape((groups, out_channels // groups, in_group) + kernel).swapaxes(1, 2)
+    flipped = swapped[(Ellipsis, *(slice(None, None, -1),) * len(kernel))]
+    return flipped.reshape((groups * in_group, out_channels // groups) + kernel)
 
 
 def _weight_gradient(x: np.ndarray, g: np.ndarray, geo: _Geometry) -> np.ndarray:
@@ -166,15 +280,12 @@ def _weight_gradient(x: np.ndarray, g: np.ndarray, geo: _Geometry) -> np.ndarray
     out_channels = g.shape[1]
     total = np.zeros((geo.groups, out_channels // geo.groups,
                       channels // geo.groups * math.prod(geo.kernel)))
-    for part in _chunks(batch, geo.per_sample_bytes(channels, out_channels)):
-        total += _weight_chunk(x[part], g[part], geo)
+    size, blocks = _scratch(geo, batch, channels, out_channels)
+    for part in _chunks(batch, size):
+        cols = blocks.im2col(x[part])
+        gc = g[part].reshape(cols.shape[0], geo.groups, -1, cols.shape[-1])
+        total += np.matmul(gc, cols.transpose(0, 1, 3, 2)).sum(axis=0)
     return total.reshape((out_channels, channels // geo.groups) + geo.kernel)
-
-
-def _weight_chunk(x: np.ndarray, g: np.ndarray, geo: _Geometry) -> np.ndarray:
-    cols = _im2col(x, geo)
-    gc = g.reshape(cols.shape[0], geo.groups, -1, cols.shape[-1])
-    return np.matmul(gc, cols.transpose(0, 1, 3, 2)).sum(axis=0)
 
 
 def _conv_layer(geo: _Geometry) -> BilinearLayer:
