@@ -127,18 +127,21 @@ def _workers() -> int:
     return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1
 
 
-def _in_parallel(task: Callable[[tuple], None], lead: tuple[int, int], nbytes: int) -> None:
+def _in_parallel(task: Callable[[tuple], None], lead: tuple[int, int], nbytes: int, *,
+                 axis: int | None = None) -> None:
     """Run ``task(index)`` on disjoint pieces of the leading ``(batch, channels)`` axes.
 
     numpy releases the GIL in copies and ufunc loops, so the pieces of a memory-bound pass run on
-    all cores while BLAS is idle; a pass smaller than ``_PARALLEL_BYTES`` runs here.
+    all cores while BLAS is idle; a pass smaller than ``_PARALLEL_BYTES`` runs here. ``axis``
+    forces the split along samples (0) or channels (1); by default the longer one.
     """
     global _pool
     workers = _workers()
-    if workers == 1 or nbytes < _PARALLEL_BYTES or max(lead) == 1:
+    if axis is None:
+        axis = 0 if lead[0] >= workers or lead[0] >= lead[1] else 1
+    if workers == 1 or nbytes < _PARALLEL_BYTES or lead[axis] == 1:
         task((slice(None),))
         return
-    axis = 0 if lead[0] >= workers or lead[0] >= lead[1] else 1
     bounds = np.linspace(0, lead[axis], min(workers, lead[axis]) + 1).astype(int)
     pieces = [(slice(None),) * axis + (slice(a, b),) for a, b in zip(bounds[:-1], bounds[1:])]
     if _pool is None:
@@ -152,13 +155,15 @@ class _Blocks:
 
     ``cols(b)`` is the block of the first ``b`` samples as ``(b, groups, C/groups * prod(kernel),
     prod(out))``; :meth:`im2col` fills it from an input chunk, :meth:`col2im` scatters it back.
+    A depthwise map (one input and one output channel per group) has no block: :meth:`contract`
+    sums the scaled windows instead, since a one-row GEMM per group would only stream the block.
     """
 
-    def __init__(self, geo: _Geometry, channels: int, samples: int):
+    def __init__(self, geo: _Geometry, channels: int, samples: int, *, direct: bool = False):
         self.geo = geo
         self.padded = (np.empty((samples, channels) + geo.padded)
                        if any(lo or hi for lo, hi in geo.pairs) else None)
-        self.block = np.empty((samples, channels) + geo.kernel + geo.out)
+        self.block = None if direct else np.empty((samples, channels) + geo.kernel + geo.out)
 
     def cols(self, b: int) -> np.ndarray:
         return self.block[:b].reshape(b, self.geo.groups, -1, math.prod(self.geo.out))
@@ -171,18 +176,50 @@ class _Blocks:
     def _padded(self, b: int, index: tuple) -> np.ndarray | None:
         return None if self.padded is None else self.padded[:b][index]
 
+    def _windows(self, x: np.ndarray, index: tuple) -> np.ndarray:
+        """The ``(b, C, *out, *kernel)`` windows of ``x[index]``, padded into the scratch."""
+        geo = self.geo
+        padded = _window.pad(x[index], geo.pairs, geo.mode, out=self._padded(x.shape[0], index))
+        read = padded[(Ellipsis, *(slice(0, e) for e in geo.extent))]
+        return _window.windows(read, geo.kernel, geo.stride, geo.dilation)
+
     def im2col(self, x: np.ndarray) -> np.ndarray:
         """Pad ``x`` and copy its windows into the block; returns ``cols(len(x))``."""
-        b, geo = x.shape[0], self.geo
+        b = x.shape[0]
         cols = self._by_window(b)
-
-        def fill(index: tuple) -> None:
-            padded = _window.pad(x[index], geo.pairs, geo.mode, out=self._padded(b, index))
-            read = padded[(Ellipsis, *(slice(0, e) for e in geo.extent))]
-            np.copyto(cols[index], _window.windows(read, geo.kernel, geo.stride, geo.dilation))
-
-        _in_parallel(fill, x.shape[:2], cols.nbytes)
+        _in_parallel(lambda index: np.copyto(cols[index], self._windows(x, index)), x.shape[:2],
+                     cols.nbytes)
         return self.cols(b)
+
+    def contract(self, x: np.ndarray, w: np.ndarray, out: np.ndarray) -> None:
+        """Depthwise ``out[n, c, p] = sum_j w[c, j] * windows(x)[n, c, p, j]``, one scaled window
+        per kernel offset; ``w`` is ``(C, prod(kernel))``, ``out`` ``(b, C, *out)``."""
+        n = len(self.geo.kernel)
+
+        def accumulate(index: tuple) -> None:
+            view, target = self._windows(x, index), out[index]
+            taps = w[index[1] if len(index) > 1 else slice(None)].reshape((-1,) + self.geo.kernel)
+            term = np.empty_like(target)
+            for j, offset in enumerate(np.ndindex(*self.geo.kernel)):
+                scale = taps[(Ellipsis, *offset)].reshape((-1,) + (1,) * n)
+                np.multiply(view[(Ellipsis, *offset)], scale, out=target if j == 0 else term)
+                if j:
+                    target += term
+
+        _in_parallel(accumulate, x.shape[:2], out.nbytes, axis=1)
+
+    def contract_weight(self, x: np.ndarray, g: np.ndarray, total: np.ndarray) -> None:
+        """Depthwise ``total[c, j] += sum_{n, p} g[n, c, p] * windows(x)[n, c, p, j]``, one
+        contraction per kernel offset; ``total`` is ``(C, *kernel)``, ``g`` ``(b, C, *out)``."""
+        space = "pqr"[:len(self.geo.kernel)]
+
+        def accumulate(index: tuple) -> None:
+            view, target = self._windows(x, index), total[index[1] if len(index) > 1 else slice(None)]
+            for offset in np.ndindex(*self.geo.kernel):
+                target[(Ellipsis, *offset)] += np.einsum(f"nc{space},nc{space}->c", g[index],
+                                                         view[(Ellipsis, *offset)])
+
+        _in_parallel(accumulate, x.shape[:2], g.nbytes, axis=1)
 
     def col2im(self, result: np.ndarray) -> None:
         """Scatter-add the block of ``len(result)`` samples onto the input: fold, then unpad."""
@@ -208,10 +245,16 @@ def _grouped(w: np.ndarray, groups: int) -> np.ndarray:
     return w.reshape(groups, w.shape[0] // groups, -1)
 
 
-def _scratch(geo: _Geometry, batch: int, channels: int, out_channels: int) -> tuple[int, _Blocks]:
+def _scratch(geo: _Geometry, batch: int, channels: int, out_channels: int, *,
+             direct: bool = False) -> tuple[int, _Blocks]:
     """The chunk size of a map and its scratch."""
     size = _chunk_size(geo.per_sample_bytes(channels, out_channels))
-    return size, _Blocks(geo, channels, min(size, batch))
+    return size, _Blocks(geo, channels, min(size, batch), direct=direct)
+
+
+def _depthwise(w: np.ndarray, groups: int) -> bool:
+    """One input and one output channel per group."""
+    return w.shape[0] == groups and w.shape[1] == 1
 
 
 def _correlate(x: np.ndarray, w: np.ndarray, geo: _Geometry) -> np.ndarray:
@@ -219,22 +262,29 @@ def _correlate(x: np.ndarray, w: np.ndarray, geo: _Geometry) -> np.ndarray:
     batch, channels = x.shape[:2]
     out = np.empty((batch, w.shape[0]) + geo.out)
     wg = _grouped(w, geo.groups)
-    size, blocks = _scratch(geo, batch, channels, w.shape[0])
+    direct = _depthwise(w, geo.groups)
+    size, blocks = _scratch(geo, batch, channels, w.shape[0], direct=direct)
     for part in _chunks(batch, size):
-        target = out[part].reshape(-1, geo.groups, wg.shape[1], math.prod(geo.out))
-        np.matmul(wg, blocks.im2col(x[part]), out=target)
+        if direct:
+            blocks.contract(x[part], wg.reshape(channels, -1), out[part])
+        else:
+            target = out[part].reshape(-1, geo.groups, wg.shape[1], math.prod(geo.out))
+            np.matmul(wg, blocks.im2col(x[part]), out=target)
     return out
 
 
 def _correlate_adjoint(g: np.ndarray, w: np.ndarray, geo: _Geometry) -> np.ndarray:
     """The adjoint of :func:`_correlate` in ``x``.
 
-    With stride 1 and zero padding it is itself a correlation (:func:`_full_correlation`);
-    otherwise a GEMM with the transposed weight, a fold and an unpad.
+    With stride 1 and zero padding it is itself a correlation (:func:`_full_correlation`), used
+    when its im2col block (``C_out`` channels over the input positions) is no larger than the
+    fold's (``C_in`` channels over the output positions); otherwise a GEMM with the transposed
+    weight, a fold and an unpad.
     """
-    if geo.mode == "zeros" and all(s == 1 for s in geo.stride):
-        return _full_correlation(g, w, geo)
     batch, channels = g.shape[0], geo.groups * w.shape[1]
+    if (geo.mode == "zeros" and all(s == 1 for s in geo.stride)
+            and w.shape[0] * math.prod(geo.spatial) <= channels * math.prod(geo.out)):
+        return _full_correlation(g, w, geo)
     result = np.empty((batch, channels) + geo.spatial)
     wt = _grouped(w, geo.groups).transpose(0, 2, 1)
     size, blocks = _scratch(geo, batch, channels, w.shape[0])
@@ -280,8 +330,12 @@ def _weight_gradient(x: np.ndarray, g: np.ndarray, geo: _Geometry) -> np.ndarray
     out_channels = g.shape[1]
     total = np.zeros((geo.groups, out_channels // geo.groups,
                       channels // geo.groups * math.prod(geo.kernel)))
-    size, blocks = _scratch(geo, batch, channels, out_channels)
+    direct = out_channels == channels == geo.groups
+    size, blocks = _scratch(geo, batch, channels, out_channels, direct=direct)
     for part in _chunks(batch, size):
+        if direct:
+            blocks.contract_weight(x[part], g[part], total.reshape((channels,) + geo.kernel))
+            continue
         cols = blocks.im2col(x[part])
         gc = g[part].reshape(cols.shape[0], geo.groups, -1, cols.shape[-1])
         total += np.matmul(gc, cols.transpose(0, 1, 3, 2)).sum(axis=0)

@@ -92,6 +92,11 @@ EDGE_CASES = {
     "stride-larger-than-kernel": dict(kernel_size=2, stride=3, padding=0, dilation=1, height=10, width=9),
     "dilation-and-stride": dict(kernel_size=3, stride=2, dilation=2, padding=1, height=9, width=10),
     "depthwise": dict(in_channels=4, groups=4, out_channels=8, kernel_size=3, padding=1),
+    "depthwise-one-channel-per-group": dict(in_channels=5, groups=5, out_channels=5, kernel_size=(3, 2),
+                                            padding=(1, 2), stride=1, dilation=(1, 2), batch=2,
+                                            height=4, width=7),
+    "depthwise-one-channel-per-group-strided": dict(in_channels=3, groups=3, out_channels=3, kernel_size=3,
+                                                    padding=1, stride=(2, 1), padding_mode="reflect"),
     "reflect-padding-size-minus-one": dict(padding_mode="reflect", padding=2, kernel_size=1, height=3, width=4),
     "circular-padding-equals-size": dict(padding_mode="circular", padding=3, kernel_size=2, height=3, width=3),
     "replicate-asymmetric": dict(padding_mode="replicate", padding=(2, 0), kernel_size=(1, 3), stride=(2, 1)),
@@ -113,6 +118,8 @@ TRANSPOSE_EDGES = {
     "output-padding-below-dilation": dict(stride=1, output_padding=(1, 2), dilation=(2, 3), kernel_size=3),
     "crop-most": dict(padding=2, kernel_size=3, stride=1, dilation=2, output_padding=0, height=1, width=2),
     "depthwise": dict(in_channels=3, groups=3, out_channels=6, stride=2, output_padding=1),
+    "depthwise-one-channel-per-group": dict(in_channels=4, groups=4, out_channels=4, stride=1, kernel_size=3,
+                                            padding=2, dilation=1, output_padding=0),
 }
 
 
@@ -250,6 +257,20 @@ def test_results_do_not_depend_on_the_chunk_size(name, limit):
         check_against_torch(name, config, 9)
     finally:
         ops.set_memory_limit(previous)
+
+
+@pytest.mark.parametrize("name, pins", [
+    ("conv2d", dict(batch=3, groups=1, stride=1, padding_mode="zeros")),
+    ("conv2d", dict(batch=1, in_channels=5, groups=1, stride=2, padding_mode="reflect")),
+    ("conv2d", dict(batch=2, in_channels=4, groups=4, out_channels=4, stride=1, padding_mode="zeros")),
+    ("conv3d", dict(batch=1, in_channels=3, groups=3, out_channels=3, stride=(2, 1, 1))),
+    ("conv_transpose2d", dict(batch=2, stride=1)), ("conv_transpose2d", dict(batch=1, stride=2))])
+def test_results_do_not_depend_on_splitting_passes_across_threads(name, pins, monkeypatch):
+    # Reference: torch.nn layers, float64, with every memory-bound pass split across the workers
+    # (along samples, or along channels for a single sample and for depthwise maps).
+    monkeypatch.setattr(conv_module, "_PARALLEL_BYTES", 0)
+    config = ops.get(name).space(RandomDraw(np.random.default_rng(12), pins=dict(pins, bias=True)))
+    check_against_torch(name, config, 13)
 
 
 @pytest.mark.parametrize("limit", [2 ** 20, 4 * 2 ** 20])
