@@ -110,10 +110,9 @@ def _chunks(total: int, size: int) -> Iterator[slice]:
         yield slice(start, min(start + size, total))
 
 
-def _chunk_size(per_sample: int, fixed: int) -> int:
-    """Samples per chunk: ``fixed + samples * per_sample`` bytes within the memory bound and
-    within :data:`_WORKING_SET`, at least one sample."""
-    return max(1, (min(_memory_limit, _WORKING_SET) - fixed) // max(per_sample, 1))
+def _chunk_size(per_sample: int) -> int:
+    """Samples per chunk: within the memory bound and within :data:`_WORKING_SET`, at least one."""
+    return max(1, min(_memory_limit, _WORKING_SET) // max(per_sample, 1))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -121,7 +120,6 @@ def _chunk_size(per_sample: int, fixed: int) -> int:
 
 _WORKING_SET = 16 * 2 ** 20  # chunks this small stay in the last-level cache between passes
 _PARALLEL_BYTES = 2 ** 20  # below this a pass runs in the calling thread
-_BOOKKEEPING = 16 * 2 ** 10  # Python objects of one map (tasks, futures, views)
 _pool: ThreadPoolExecutor | None = None
 
 
@@ -249,13 +247,8 @@ def _grouped(w: np.ndarray, groups: int) -> np.ndarray:
 
 def _scratch(geo: _Geometry, batch: int, channels: int, out_channels: int, *,
              direct: bool = False) -> tuple[int, _Blocks]:
-    """The chunk size of a map and its scratch.
-
-    Besides the per-sample scratch a map holds two weight-sized arrays (a flipped weight, a
-    chunk's summed weight products) and some bookkeeping of the worker threads.
-    """
-    weight = 8 * out_channels * channels // geo.groups * math.prod(geo.kernel)
-    size = _chunk_size(geo.per_sample_bytes(channels, out_channels), 2 * weight + _BOOKKEEPING)
+    """The chunk size of a map and its scratch."""
+    size = _chunk_size(geo.per_sample_bytes(channels, out_channels))
     return size, _Blocks(geo, channels, min(size, batch), direct=direct)
 
 
