@@ -110,9 +110,10 @@ def _chunks(total: int, size: int) -> Iterator[slice]:
         yield slice(start, min(start + size, total))
 
 
-def _chunk_size(per_sample: int) -> int:
-    """Samples per chunk: within the memory bound and within :data:`_WORKING_SET`, at least one."""
-    return max(1, min(_memory_limit, _WORKING_SET) // max(per_sample, 1))
+def _chunk_size(per_sample: int, fixed: int) -> int:
+    """Samples per chunk: ``fixed + samples * per_sample`` bytes within the memory bound and
+    within :data:`_WORKING_SET`, at least one sample."""
+    return max(1, (min(_memory_limit, _WORKING_SET) - fixed) // max(per_sample, 1))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -120,6 +121,7 @@ def _chunk_size(per_sample: int) -> int:
 
 _WORKING_SET = 16 * 2 ** 20  # chunks this small stay in the last-level cache between passes
 _PARALLEL_BYTES = 2 ** 20  # below this a pass runs in the calling thread
+_BOOKKEEPING = 16 * 2 ** 10  # Python objects of one map (tasks, futures, views)
 _pool: ThreadPoolExecutor | None = None
 
 
@@ -247,8 +249,16 @@ def _grouped(w: np.ndarray, groups: int) -> np.ndarray:
 
 def _scratch(geo: _Geometry, batch: int, channels: int, out_channels: int, *,
              direct: bool = False) -> tuple[int, _Blocks]:
-    """The chunk size of a map and its scratch."""
-    size = _chunk_size(geo.per_sample_bytes(channels, out_channels))
+    """The chunk size of a map and its scratch.
+
+    Besides the per-sample scratch a map holds two weight-sized arrays (a flipped weight, a
+    chunk's summed weight products), the bookkeeping of the worker threads and, per worker, the
+    buffers of a strided ufunc loop (up to three operands of ``numpy.getbufsize()`` elements).
+    """
+    weight = 8 * out_channels * channels // geo.groups * math.prod(geo.kernel)
+    buffers = _workers() * 3 * 8 * np.getbufsize()
+    size = _chunk_size(geo.per_sample_bytes(channels, out_channels),
+                       2 * weight + buffers + _BOOKKEEPING)
     return size, _Blocks(geo, channels, min(size, batch), direct=direct)
 
 
