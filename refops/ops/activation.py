@@ -106,12 +106,15 @@ def _quotient_pair(x, d):
 # ---------------------------------------------------------------------------------------------
 
 def _logistic(z):
-    """``(sigmoid(z), sigmoid(-z))``, each to ~1 ulp, from one ``exp(-|z|)``."""
+    """``(sigmoid(z), sigmoid(-z))``, each to ~1 ulp, from one ``exp(-|z|)``.
+
+    ``sigmoid(z) = r * max(e, [z >= 0])`` with ``r = 1 / (1 + e)``: the maximum picks 1 or ``e``
+    exactly, without a branch.
+    """
     e = np.exp(-np.abs(z))
     r = 1.0 / (1.0 + e)
-    er = e * r
-    positive = z >= 0
-    return np.where(positive, r, er), np.where(positive, er, r)
+    positive = (z >= 0).astype(np.float64)
+    return r * np.maximum(e, positive), r * np.maximum(e, 1.0 - positive)
 
 
 def _logistic_pair(hi, lo):
