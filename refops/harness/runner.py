@@ -19,10 +19,11 @@ from ..numerics.formats import get_format, round_to
 from ..numerics.tolerance import RoundingBound
 from ..ops._space import PinError, RandomDraw, pinned_value
 from . import deviations as _deviations
-from .values import FAMILIES, families_for
+from .values import ELEMENTWISE, FAMILIES, families_for
 from .verdict import CaseResult, Report
 
 DTYPES = ("float64", "float32", "float16", "bfloat16")
+CASES_PER_MESSAGE = 16
 HELD_AT_DEFAULT = ("divisor_override",)
 
 
@@ -113,10 +114,49 @@ def _oracle(op, case: Case, dtype: str, model, use_deviations: bool):
     return references, allowed, applied
 
 
+# Ops whose dim 0 is a batch of independent samples (the output's dim 0 follows the input's).
+SAMPLEWISE = frozenset({"linear", "conv1d", "conv2d", "conv3d", "conv_transpose2d", "max_pool2d", "avg_pool2d",
+                        "adaptive_avg_pool2d", "adaptive_max_pool2d", "layer_norm", "group_norm"}) | ELEMENTWISE
+
+
+def _samplewise(op, case: Case) -> bool:
+    first = case.arrays.get(op.arrays[0])
+    if first is None or first.ndim < 2 or first.shape[0] < 2:
+        return False
+    if op.name in ("softmax", "log_softmax"):
+        return case.params["dim"] % first.ndim != 0
+    if op.name == "layer_norm":
+        return len(np.atleast_1d(case.params["normalized_shape"])) < first.ndim
+    return op.name in SAMPLEWISE and (op.name != "prelu" or first.ndim >= 2)
+
+
 def _job(op, case: Case, dtype: str, layout: str, device: str) -> dict:
-    return {"arrays": case.arrays, "array_order": list(op.arrays), "layer": case.config.layer,
-            "params": case.params, "dtype": dtype, "layout": layout, "device": device,
-            "cotangent": case.cotangent}
+    job = {"arrays": case.arrays, "array_order": list(op.arrays), "layer": case.config.layer,
+           "params": case.params, "dtype": dtype, "layout": layout, "device": device,
+           "cotangent": case.cotangent, "batch_alone": _samplewise(op, case), "self_fd": dtype == "float64",
+           "isolate": bool(_unsafe_in_process(op, case))}
+    if job["self_fd"]:
+        positional = tuple(case.arrays.get(name) for name in op.arrays)
+        job["kink_distance"] = op.kink_distance(*positional, **case.params)
+    return job
+
+
+def _run_here(op, factory: Callable, case: Case, job: dict) -> dict:
+    """Run a case in this process, unless a declared deviation says torch must not."""
+    from .subject import run_subject
+    reason = _unsafe_in_process(op, case)
+    if reason:
+        return {"skip": reason}
+    return run_subject(factory, job)
+
+
+def _unsafe_in_process(op, case: Case) -> str:
+    """Why torch must not run this case in the caller's process ("" when it may)."""
+    if case.config.drawn.get("padding_only_windows"):
+        deviation = _deviations.unsafe(op.name)
+        if deviation is not None:
+            return deviation.describe()
+    return ""
 
 
 def judge(op, case: Case, result: dict, dtype: str, model, use_deviations: bool = True
@@ -124,6 +164,9 @@ def judge(op, case: Case, result: dict, dtype: str, model, use_deviations: bool 
     """Turn the subject's result for a case into a verdict."""
     verdict = CaseResult(case_id=case.case_id, config={**case.config.drawn, **case.config.layer},
                          values=case.family, status="passed")
+    if result.get("skip"):
+        verdict.status, verdict.message = "skipped", f"not run in this process: {result['skip']}"
+        return verdict, [result["skip"]]
     if result.get("fault"):
         verdict.status, verdict.message = result["fault"], result["error"]
         return verdict, []
@@ -146,9 +189,25 @@ def judge(op, case: Case, result: dict, dtype: str, model, use_deviations: bool 
             continue
         verdict.comparisons.append(compare(tensor, value, reference, allowed[tensor], dtype,
                                            model=model.describe()))
+    if result.get("alone") is not None:
+        verdict.findings.extend(_batch_independence(result["alone"], references["output"],
+                                                    allowed["output"]))
     if verdict.findings or not all(c.passed for c in verdict.comparisons):
         verdict.status = "failed"
     return verdict, applied
+
+
+def _batch_independence(alone: np.ndarray, reference: np.ndarray, allowed: np.ndarray) -> list[str]:
+    """Sample 0 run alone must agree with the oracle's sample 0 within the same bound."""
+    if alone.shape != reference[:1].shape:
+        return [f"batch independence: sample 0 alone gives shape {alone.shape}, expected {reference[:1].shape}"]
+    error = np.abs(alone - reference[:1])
+    over = ~(error <= allowed[:1]) & ~(np.isinf(alone) & (alone == reference[:1]))
+    if not over.any():
+        return []
+    index = np.unravel_index(int(np.argmax(np.where(over, error, -1))), alone.shape)
+    return [f"batch independence: sample 0 run alone differs from the oracle at {tuple(int(i) for i in index)} "
+            f"by {error[index]:.3g} (allowed {allowed[:1][index]:.3g}): the output depends on other samples"]
 
 
 def _replay(target: str, op: str, dtype: str, pins: Mapping[str, Any], case_id: str, layout: str) -> str:
@@ -185,7 +244,7 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
     callable on tensors). ``pins`` fixes configuration values; ``case_ids`` replays given cases;
     ``shard=(I, N)`` runs the cases whose index is I modulo N (a CI matrix over N machines).
     """
-    from .subject import LAYOUTS, run_subject
+    from .subject import LAYOUTS
     from .worker import Worker
     oracle = ops.get(op)
     if dtype not in DTYPES:
@@ -208,19 +267,22 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
     applied: set[str] = set()
     start = time.perf_counter()
     try:
-        for count, case in enumerate(drawn):
+        for first in range(0, len(drawn), CASES_PER_MESSAGE):
             if budget is not None and time.perf_counter() - start > budget:
                 break
-            began = time.perf_counter()
-            job = _job(oracle, case, dtype, layout, device)
-            result = worker.run(job) if worker else run_subject(target, job)
-            verdict, used = judge(oracle, case, result, dtype, model, use_deviations)
-            verdict.seconds = time.perf_counter() - began
-            verdict.replay = _replay(name, op, dtype, pins, case.case_id, layout)
-            report.cases.append(verdict)
-            applied.update(used)
+            chunk = drawn[first:first + CASES_PER_MESSAGE]
+            jobs = [_job(oracle, case, dtype, layout, device) for case in chunk]
+            results = worker.run_many(jobs) if worker else [_run_here(oracle, target, case, job)
+                                                            for case, job in zip(chunk, jobs)]
+            for case, result in zip(chunk, results):
+                began = time.perf_counter()
+                verdict, used = judge(oracle, case, result, dtype, model, use_deviations)
+                verdict.seconds = result.get("seconds", 0.0) + time.perf_counter() - began
+                verdict.replay = _replay(name, op, dtype, pins, case.case_id, layout)
+                report.cases.append(verdict)
+                applied.update(used)
             if progress:
-                progress(count + 1, len(drawn))
+                progress(len(report.cases), len(drawn))
     finally:
         if worker:
             worker.close()

@@ -12,6 +12,7 @@ import importlib
 import importlib.util
 import os
 import sys
+import time
 import traceback
 from pathlib import Path
 from typing import Any, Callable
@@ -88,10 +89,7 @@ def _forward_backward(subject, inputs: dict, params: dict, cotangent, as_module:
     for tensor in list(inputs.values()) + list(params.values()):
         if tensor is not None and tensor.grad is not None:
             tensor.grad = None
-    if as_module:
-        output = subject(*[t for t in inputs.values() if t is not None])
-    else:
-        output = subject(*[t for t in list(inputs.values()) + list(params.values())])
+    output = _call(subject, inputs, params, as_module)
     torch = _torch()
     if not isinstance(output, torch.Tensor):
         raise TypeError(f"the subject returned {type(output).__name__}, not a tensor")
@@ -104,14 +102,60 @@ def _forward_backward(subject, inputs: dict, params: dict, cotangent, as_module:
 
 
 def run_subject(factory: Callable, job: dict) -> dict:
-    """Run one case; ``job`` holds op arrays, layer config, dtype, layout, device and cotangent."""
+    """Run one case; ``job`` holds op arrays, layer config, dtype, layout, device and cotangent.
+
+    Optional keys: ``batch_alone`` (also run sample 0 of the first array alone and return its
+    output as ``alone``) and ``self_fd`` (float64 only: compare the subject's backward with finite
+    differences of its own forward, findings for disagreements).
+    """
     torch = _torch()
+    began = time.perf_counter()
     try:
-        return _run(factory, job, torch)
+        result = _run(factory, job, torch)
     except Exception as error:  # a fault of the subject, reported as a verdict
         frames = traceback.extract_tb(error.__traceback__)
         where = f" (at {Path(frames[-1].filename).name}:{frames[-1].lineno})" if frames else ""
-        return {"error": f"{type(error).__name__}: {error}{where}"}
+        result = {"error": f"{type(error).__name__}: {error}{where}"}
+    result["seconds"] = time.perf_counter() - began
+    return result
+
+
+def _numpy_function(subject, inputs: dict, params: dict, as_module: bool):
+    """``fn(**arrays) -> float64 output`` evaluating the subject forward on replaced values."""
+    torch = _torch()
+    tensors = {**inputs, **params}
+
+    def fn(**arrays):
+        saved = {n: t.detach().clone() for n, t in tensors.items() if t is not None and n in arrays}
+        with torch.no_grad():
+            for name in saved:
+                tensors[name].copy_(torch.from_numpy(np.asarray(arrays[name], dtype=np.float64)))
+            try:
+                return _to_numpy(_call(subject, inputs, params, as_module))
+            finally:
+                for name, before in saved.items():
+                    tensors[name].copy_(before)
+    return fn
+
+
+def _self_fd_findings(subject, inputs, params, as_module, first: dict, job: dict) -> list[str]:
+    """The float64 subject's own backward against finite differences of its own forward."""
+    from ..numerics.finite_diff import vjp_fd_agreement
+    fn = _numpy_function(subject, inputs, params, as_module)
+    arrays = {n: _to_numpy(t) for n, t in {**inputs, **params}.items()
+              if t is not None and t.is_floating_point() and first.get(n) is not None}
+    gradients = {n: first[n] for n in arrays}
+    agreements = vjp_fd_agreement(fn, lambda g, **a: gradients, arrays, rng=np.random.default_rng(0),
+                                  kink_distance=job.get("kink_distance"), cotangent=job["cotangent"])
+    return [f"the subject's own backward disagrees with finite differences of its forward for "
+            f"{a.array}: error {a.max_error:.3g} vs FD estimate {a.estimate:.3g} ({a.method})"
+            for a in agreements if not a.passed]
+
+
+def _call(subject, inputs: dict, params: dict, as_module: bool):
+    if as_module:
+        return subject(*[t for t in inputs.values() if t is not None])
+    return subject(*[t for t in list(inputs.values()) + list(params.values())])
 
 
 def _run(factory: Callable, job: dict, torch) -> dict:
@@ -166,5 +210,19 @@ def _run(factory: Callable, job: dict, torch) -> dict:
         a, b = first[name], second.get(name)
         if a is not None and b is not None and not np.array_equal(a, b, equal_nan=True):
             findings.append(f"not deterministic: {name} differs between two identical runs")
-    return {"output": first["output"], "output_dtype": str(output.dtype).replace("torch.", ""),
-            "grads": {n: g for n, g in first.items() if n != "output"}, "findings": findings, "error": ""}
+    if job.get("self_fd") and not findings and first["output"].shape == job["cotangent"].shape:
+        findings.extend(_self_fd_findings(subject, inputs, params, as_module, first, job))
+    result = {"output": first["output"], "output_dtype": str(output.dtype).replace("torch.", ""),
+              "grads": {n: g for n, g in first.items() if n != "output"}, "findings": findings, "error": ""}
+    if job.get("batch_alone"):
+        result["alone"] = _first_sample_alone(subject, inputs, params, as_module)
+    return result
+
+
+def _first_sample_alone(subject, inputs: dict, params: dict, as_module: bool) -> np.ndarray:
+    """The output for sample 0 of the first input run as a batch of one."""
+    torch = _torch()
+    first = next(iter(inputs))
+    alone = {**inputs, first: inputs[first].detach()[:1]}
+    with torch.no_grad():
+        return _to_numpy(_call(subject, alone, params, as_module))

@@ -3,7 +3,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
-STATUSES = ("passed", "failed", "subject-error", "aborted", "timeout")
+STATUSES = ("passed", "failed", "subject-error", "aborted", "timeout", "skipped")
 
 
 @dataclass
@@ -12,7 +12,8 @@ class CaseResult:
 
     ``status`` is ``"passed"``, ``"failed"`` (a tensor disagrees or a check found a fault),
     ``"subject-error"`` (the subject raised or returned something unusable), ``"aborted"`` (it took
-    the worker process down) or ``"timeout"``.
+    the worker process down), ``"timeout"`` or ``"skipped"`` (a declared deviation kept it from
+    running; neither a pass nor a failure).
     """
 
     case_id: str
@@ -50,11 +51,11 @@ class Report:
 
     @property
     def passed(self) -> bool:
-        return bool(self.cases) and all(c.passed for c in self.cases)
+        return any(c.passed for c in self.cases) and not self.failures
 
     @property
     def failures(self) -> list:
-        return [c for c in self.cases if not c.passed]
+        return [c for c in self.cases if c.status not in ("passed", "skipped")]
 
     def summary(self) -> dict:
         counts: dict[str, int] = {}

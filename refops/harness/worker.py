@@ -1,7 +1,7 @@
 """A worker process that runs subjects, so that a crash inside a native kernel is a verdict.
 
 The worker (``python -m refops.harness.worker TARGET``) loads the TARGET once and then serves one
-case per message: length-prefixed pickles over its stdin and a private copy of its stdout (the
+batch of cases per message (one reply per case, sent as soon as it is done): length-prefixed pickles over its stdin and a private copy of its stdout (the
 subject's own prints go to stderr). It is a fresh interpreter, so the caller's main script is
 never re-run. If the worker dies (a segfault, an abort, heap corruption) or a case runs past the
 time limit, the parent reports that case and starts a fresh worker for the next one.
@@ -55,10 +55,11 @@ def _serve(target: str) -> None:
     _send(replies, {"ready": True})
     while True:
         try:
-            job = _receive(requests)
+            jobs = _receive(requests)
         except EOFError:
             return
-        _send(replies, run_subject(factory, job))
+        for job in jobs:
+            _send(replies, run_subject(factory, job))
 
 
 class Worker:
@@ -90,18 +91,40 @@ class Worker:
             raise RuntimeError(hello["error"])
 
     def run(self, job: dict) -> dict[str, Any]:
+        return self.run_many([job])[0]
+
+    def run_many(self, jobs: list[dict]) -> list[dict[str, Any]]:
+        """Results of ``jobs`` in order. A case that hangs or takes the worker down gets a fault
+        record; a fresh worker then runs the cases after it. A job marked ``isolate`` runs alone
+        and its worker is discarded after it."""
+        results: list[dict[str, Any]] = []
+        while len(results) < len(jobs):
+            rest = jobs[len(results):]
+            if rest[0].get("isolate"):  # alone in a fresh worker: it may corrupt the process
+                results.extend(self._run_until_fault(rest[:1]))
+                self.close()
+                continue
+            upto = next((i for i, job in enumerate(rest) if job.get("isolate")), len(rest))
+            results.extend(self._run_until_fault(rest[:upto]))
+        return results
+
+    def _run_until_fault(self, jobs: list[dict]) -> list[dict[str, Any]]:
         if self._process is None or self._process.poll() is not None:
             self._start()
+        results: list[dict[str, Any]] = []
         try:
-            _send(self._process.stdin, job)
-            if not self._wait_readable(self.timeout):
-                self.close()
-                return {"fault": "timeout", "error": f"the subject ran past the time limit of {self.timeout:g} s"}
-            return _receive(self._process.stdout)
+            _send(self._process.stdin, jobs)
+            for _ in jobs:
+                if not self._wait_readable(self.timeout):
+                    self.close()
+                    return results + [{"fault": "timeout",
+                                       "error": f"the subject ran past the time limit of {self.timeout:g} s"}]
+                results.append(_receive(self._process.stdout))
+            return results
         except (EOFError, BrokenPipeError, ConnectionResetError):
             code = self._process.wait(5)
             self.close()
-            return {"fault": "aborted", "error": f"the subject aborted the process (exit code {code})"}
+            return results + [{"fault": "aborted", "error": f"the subject aborted the process (exit code {code})"}]
 
     def close(self) -> None:
         if self._process is not None:

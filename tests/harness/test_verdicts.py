@@ -48,11 +48,11 @@ def test_open_false_alarms_are_still_open(op, dtype):
 def test_torch_max_pool_passes_in_a_worker_process(dtype):
     # SOURCES.md: torch's max-pool backward can corrupt memory when a window covers only padding.
     # In the worker process such a case is a verdict ("aborted"), and the sweep goes on.
-    report = check_layer(f"{HERE}:max_pool", "max_pool2d", cases=30, seed=2, dtype=dtype)
+    report = check_layer(f"{HERE}:max_pool", "max_pool2d", cases=30, seed=2, dtype=dtype, timeout=10)
     assert len(report.cases) == 30
     for case in report.failures:
-        assert case.config["padding_only_windows"], case.case_id
-        assert case.status in ("aborted", "failed") and "--case" in case.replay
+        assert case.config["padding_only_windows"], (case.case_id, case.status, case.message)
+        assert case.status in ("aborted", "failed", "timeout") and "--case" in case.replay
     assert sum(case.passed for case in report.cases) >= 25
 
 
