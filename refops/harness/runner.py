@@ -133,7 +133,7 @@ def _samplewise(op, case: Case) -> bool:
 def _job(op, case: Case, dtype: str, layout: str, device: str) -> dict:
     job = {"arrays": case.arrays, "array_order": list(op.arrays), "layer": case.config.layer,
            "params": case.params, "dtype": dtype, "layout": layout, "device": device,
-           "cotangent": case.cotangent, "batch_alone": _samplewise(op, case), "self_fd": dtype == "float64",
+           "cotangent": case.cotangent, "batch_alone": _samplewise(op, case), "self_fd": dtype == "float64" and case.family != "tiny",
            "isolate": bool(_unsafe_in_process(op, case))}
     if job["self_fd"]:
         positional = tuple(case.arrays.get(name) for name in op.arrays)

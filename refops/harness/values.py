@@ -51,8 +51,25 @@ def _large(rng, shape, fmt, op, params):
     return rng.choice([-1.0, 1.0], shape) * rng.uniform(top / 20, top, shape)
 
 
+def _tiny(rng, shape, fmt, op, params):
+    """One element in four a subnormal number of the subject's format (or its smallest normal),
+    the rest normal: subnormals must not turn into NaN, infinity or garbage. (A subject that
+    treats them as zero changes sums by less than the bound, as accelerators commonly do.)"""
+    f = get_format(fmt)
+    steps = rng.integers(1, 2 ** min(f.fraction_bits, 20), shape, endpoint=True)
+    subnormal = rng.choice([-1.0, 1.0], shape) * np.minimum(steps * f.smallest_subnormal, f.tiny)
+    return np.where(rng.random(shape) < 0.25, subnormal, rng.standard_normal(shape))
+
+
+def _cancellation(rng, shape, fmt, op, params):
+    """Nearly equal positive values (1 plus noise at 1/256): sums with mixed-sign weights cancel."""
+    return 1.0 + rng.standard_normal(shape) / 256.0
+
+
 FAMILIES = {"normal": _normal, "wide": _wide, "ties": _ties, "negative": _negative,
-            "kinks": _kinks, "large": _large}
+            "kinks": _kinks, "large": _large, "tiny": _tiny, "cancellation": _cancellation}
+MULTILINEAR = frozenset({"linear", "conv1d", "conv2d", "conv3d", "conv_transpose2d", "avg_pool2d",
+                         "adaptive_avg_pool2d"})
 
 
 def families_for(op) -> tuple[str, ...]:
@@ -64,4 +81,7 @@ def families_for(op) -> tuple[str, ...]:
         names.append("kinks")
     if op.name in SATURATING:
         names.append("large")
+    names.append("tiny")
+    if op.name in MULTILINEAR:
+        names.append("cancellation")
     return tuple(names)

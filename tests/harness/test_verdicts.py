@@ -18,11 +18,11 @@ SAFE_IN_PROCESS = sorted(set(FACTORIES) - {"max_pool2d"})
 OPEN_FALSE_ALARMS = {
     ("atan", "bfloat16"), ("atan", "float16"), ("batch_norm", "bfloat16"), ("batch_norm", "float16"),
     ("binary_cross_entropy_with_logits", "bfloat16"), ("binary_cross_entropy_with_logits", "float16"),
-    ("binary_cross_entropy_with_logits", "float32"), ("cross_entropy", "bfloat16"), ("cross_entropy", "float16"),
+("cross_entropy", "bfloat16"), ("cross_entropy", "float16"),
     ("gelu", "bfloat16"), ("gelu", "float32"), ("group_norm", "bfloat16"), ("group_norm", "float16"),
     ("layer_norm", "bfloat16"), ("layer_norm", "float16"), ("log_softmax", "bfloat16"), ("log_softmax", "float16"),
     ("logsigmoid", "bfloat16"), ("logsigmoid", "float16"), ("mse_loss", "bfloat16"), ("mse_loss", "float16"),
-    ("prelu", "bfloat16"), ("prelu", "float16"), ("sigmoid", "float16"), ("silu", "float32"),
+    ("prelu", "bfloat16"), ("prelu", "float16"), ("sigmoid", "float16"), 
     ("softmax", "bfloat16"), ("softsign", "bfloat16"), ("softsign", "float16"), ("softsign", "float32"),
 }
 PAIRS = [(op, dtype) for op in SAFE_IN_PROCESS for dtype in ("float32", "float16", "bfloat16")]
@@ -81,7 +81,7 @@ def test_buggy_convolutions_are_caught(where, defect):
 
 
 def test_max_pool_duplicating_the_gradient_on_ties_is_caught():
-    report = check_layer(TiedMaxPool, "max_pool2d", cases=12, seed=5,
+    report = check_layer(TiedMaxPool, "max_pool2d", cases=24, seed=5,
                          pins={"padding": 0, "ceil_mode": False, "dilation": 1})
     failing = {c.tensor for case in report.failures for c in case.comparisons if not c.passed}
     assert failing == {"input"}
