@@ -210,6 +210,43 @@ def _batch_independence(alone: np.ndarray, reference: np.ndarray, allowed: np.nd
             f"by {error[index]:.3g} (allowed {allowed[:1][index]:.3g}): the output depends on other samples"]
 
 
+SIZES = ("batch", "in_channels", "out_channels", "channels", "features", "in_features", "out_features",
+         "height", "width", "length", "depth", "kernel_size")
+
+
+def _defect(verdict: CaseResult) -> set[str]:
+    """What failed, coarsely: the failing tensors and the kinds of finding."""
+    return {c.tensor for c in verdict.comparisons if not c.passed} | \
+        {f.split(":")[0].split(" ")[0] for f in verdict.findings}
+
+
+def _shrink(op, verdict: CaseResult, run: Callable, dtype, layout, device, model, pins, name, op_name) -> None:
+    """Halve one size at a time (as pins) while the case still fails the same way."""
+    seed, index = parse_case_id(verdict.case_id)
+    target_defect, current, found = _defect(verdict), dict(pins), None
+    for _ in range(12):
+        smaller = None
+        for size in SIZES:
+            value = verdict.config.get(size) if found is None else found[0].config.get(size)
+            if not isinstance(value, int) or isinstance(value, bool) or value < 2:
+                continue
+            trial = {**current, size: value // 2}
+            try:
+                case = draw_case(op, seed, index, dtype, trial)
+            except (PinError, ValueError):
+                continue
+            result, _ = judge(op, case, run(_job(op, case, dtype, layout, device)), dtype, model)
+            if result.status == "failed" and _defect(result) & target_defect:
+                smaller = (result, trial)
+                break
+        if smaller is None:
+            break
+        found, current = smaller, smaller[1]
+    if found is not None:
+        verdict.smallest = {"config": found[0].config,
+                            "replay": _replay(name, op_name, dtype, current, verdict.case_id, layout)}
+
+
 def _replay(target: str, op: str, dtype: str, pins: Mapping[str, Any], case_id: str, layout: str) -> str:
     sets = "".join(f" --set {k}={_pin_text(v)}" for k, v in sorted(pins.items()))
     extra = "" if layout == "contiguous" else f" --layout {layout}"
@@ -234,7 +271,7 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
                 pins: Mapping[str, Any] | None = None, layout: str = "contiguous", device: str = "cpu",
                 timeout: float = 60.0, budget: float | None = None, model=None,
                 case_ids: list[str] | None = None, use_deviations: bool = True,
-                shard: tuple[int, int] = (0, 1),
+                shard: tuple[int, int] = (0, 1), shrink: int = 3,
                 progress: Callable[[int, int], None] | None = None) -> Report:
     """Check a subject against the oracle ``op`` over drawn cases; returns a :class:`Report`.
 
@@ -243,8 +280,10 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
     receives the op's layer configuration as keyword arguments and returns a torch module (or a
     callable on tensors). ``pins`` fixes configuration values; ``case_ids`` replays given cases;
     ``shard=(I, N)`` runs the cases whose index is I modulo N (a CI matrix over N machines).
+    The first ``shrink`` failing cases are retried with halved sizes; the smallest configuration
+    that still fails the same way is attached to the case (``CaseResult.smallest``).
     """
-    from .subject import LAYOUTS
+    from .subject import LAYOUTS, run_subject
     from .worker import Worker
     oracle = ops.get(op)
     if dtype not in DTYPES:
@@ -283,6 +322,9 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
                 applied.update(used)
             if progress:
                 progress(len(report.cases), len(drawn))
+        run = worker.run if worker else (lambda job: run_subject(target, job))
+        for verdict in [c for c in report.cases if c.status == "failed"][:shrink]:
+            _shrink(oracle, verdict, run, dtype, layout, device, model, pins, name, op)
     finally:
         if worker:
             worker.close()

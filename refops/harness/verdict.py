@@ -25,6 +25,7 @@ class CaseResult:
     message: str = ""
     replay: str = ""
     seconds: float = 0.0
+    smallest: dict | None = None  # {"config", "replay"}: the smallest configuration failing alike
 
     @property
     def passed(self) -> bool:
@@ -34,7 +35,7 @@ class CaseResult:
         return {"case_id": self.case_id, "config": self.config, "values": self.values,
                 "status": self.status, "tensors": [c.to_json() for c in self.comparisons],
                 "findings": list(self.findings), "message": self.message, "replay": self.replay,
-                "seconds": round(self.seconds, 4)}
+                "seconds": round(self.seconds, 4), "smallest": self.smallest}
 
 
 @dataclass

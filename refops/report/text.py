@@ -5,7 +5,8 @@ from .wording import CAUTION, config_text, failing_comparisons
 
 
 def _comparison_lines(c) -> list[str]:
-    lines = [f"    {c.tensor}: {c.violations} of {max(1, _size(c.shape))} elements over the bound "
+    label = "output" if c.tensor == "output" else f"grad of {c.tensor}"
+    lines = [f"    {label}: {c.violations} of {max(1, _size(c.shape))} elements over the bound "
              f"(share used: max {c.share_max:.3g}, p99 {c.share_p99:.3g}; max abs {c.max_abs:.3g}, "
              f"max rel {c.max_rel:.3g}, max {c.max_ulps:.3g} ulp)"]
     for w in c.worst[:3]:
@@ -33,6 +34,9 @@ def render_text(report, *, max_cases: int = 10) -> str:
         for c in failing_comparisons(case):
             lines.extend(_comparison_lines(c))
         lines.append(f"  replay: {case.replay}")
+        if case.smallest:
+            lines.append(f"  smallest configuration failing alike: {config_text(case.smallest['config'])}")
+            lines.append(f"  replay it: {case.smallest['replay']}")
         lines.append("")
     if len(report.failures) > max_cases:
         lines.append(f"... {len(report.failures) - max_cases} more failing cases (see --json)")

@@ -1,5 +1,7 @@
 """The hand-written conv2d (refops.examples.layers) passes; each of its buggy twins is caught with
 default settings; a numpy subject with a user-supplied backward is judged like a torch one."""
+import re
+
 import numpy as np
 import pytest
 
@@ -63,3 +65,15 @@ def test_numpy_subject_with_its_own_backward(dtype):
 def test_numpy_subject_needs_callables():
     with pytest.raises(TypeError, match="expected two callables"):
         numpy_subject(np.zeros(3), _linear_backward)
+
+
+def test_a_failure_is_shrunk_to_a_smaller_configuration_that_replays():
+    report = check_layer(layers.conv2d_weight_gradient_scaled, "conv2d", cases=2, seed=0)
+    case = report.failures[0]
+    sizes = ("batch", "in_channels", "out_channels")
+    assert case.smallest is not None
+    assert sum(case.smallest["config"][s] for s in sizes) < sum(case.config[s] for s in sizes)
+    pins = {k: int(v) for k, v in re.findall(r"--set (\w+)=(\d+)", case.smallest["replay"])}
+    assert pins
+    again = check_layer(layers.conv2d_weight_gradient_scaled, "conv2d", pins=pins, case_ids=[case.case_id])
+    assert again.cases[0].config == case.smallest["config"] and again.cases[0].status == "failed"
