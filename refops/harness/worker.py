@@ -1,8 +1,8 @@
 """A worker process that runs subjects, so that a crash inside a native kernel is a verdict.
 
 The worker (``python -m refops.harness.worker TARGET``) loads the TARGET once and then serves one
-batch of cases per message (one reply per case, sent as soon as it is done): length-prefixed pickles over its stdin and a private copy of its stdout (the
-subject's own prints go to stderr). It is a fresh interpreter, so the caller's main script is
+batch of cases per message (one reply per case, sent as soon as it is done): length-prefixed
+pickles over its stdin and a private copy of its stdout (the subject's own prints go to stderr). It is a fresh interpreter, so the caller's main script is
 never re-run. If the worker dies (a segfault, an abort, heap corruption) or a case runs past the
 time limit, the parent reports that case and starts a fresh worker for the next one.
 """
@@ -21,7 +21,9 @@ _HEADER = struct.Struct("<Q")
 
 def _send(stream: BinaryIO, message: Any) -> None:
     payload = pickle.dumps(message, protocol=pickle.HIGHEST_PROTOCOL)
-    stream.write(_HEADER.pack(len(payload)) + payload)
+    data = memoryview(_HEADER.pack(len(payload)) + payload)
+    while data:  # an unbuffered stream may take part of it
+        data = data[stream.write(data):]
     stream.flush()
 
 
@@ -76,8 +78,10 @@ class Worker:
         return bool(ready)
 
     def _start(self) -> None:
+        # Unbuffered: ``select`` sees the pipe, so no reply may sit unread in a reader's buffer.
         self._process = subprocess.Popen([sys.executable, "-m", "refops.harness.worker", self.target],
-                                         stdin=subprocess.PIPE, stdout=subprocess.PIPE, cwd=os.getcwd())
+                                         stdin=subprocess.PIPE, stdout=subprocess.PIPE, cwd=os.getcwd(),
+                                         bufsize=0)
         if not self._wait_readable(self.START_TIMEOUT):
             self.close()
             raise RuntimeError("the worker process did not start")

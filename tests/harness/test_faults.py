@@ -34,3 +34,23 @@ def test_an_abort_is_a_verdict_and_the_worker_restarts():
     assert [c.status for c in report.cases] == ["aborted", "aborted"]
     assert "aborted the process" in report.cases[0].message
     assert report.cases[1].replay.endswith("--case 0-1")
+
+
+def test_replies_that_arrive_together_are_all_read(monkeypatch):
+    # Regression: the worker's replies to one batch can all be in the pipe before the parent
+    # reads the first; none may then be mistaken for a subject that hangs.
+    import time
+    import refops.harness.worker as worker
+
+    class LateReader(worker.Worker):
+        waits = 0
+
+        def _wait_readable(self, seconds):
+            self.waits += 1
+            if self.waits == 2:  # the first reply of the batch: let the worker write them all
+                time.sleep(2.0)
+            return super()._wait_readable(seconds)
+
+    monkeypatch.setattr(worker, "Worker", LateReader)
+    report = check_layer(f"{HERE}:relu", "relu", cases=16, seed=0, timeout=1)
+    assert [c.status for c in report.cases] == ["passed"] * 16
