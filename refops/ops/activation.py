@@ -204,16 +204,24 @@ def _kink(points: Callable[[dict], tuple[float, ...]], description: str, derivat
     return Kink(description=description, derivative=derivative, distance=distance, points=points)
 
 
+def _no_intermediates(x, **params):
+    return 0.0, 0.0
+
+
 def _elementwise(*, derivative: Callable, curvature: Callable, length: float,
                  check: Callable[[dict], dict] = _no_params, space: Callable | None = None,
-                 kinks: tuple[Kink, ...] = (), saved: Callable | None = None) -> Callable:
+                 kinks: tuple[Kink, ...] = (), rounded: Callable = _no_intermediates,
+                 cancelling: Callable = _no_intermediates) -> Callable:
     """Register a unary elementwise op from its rules.
 
     ``derivative(x, **params)`` is ``f'``, ``curvature(x, **params)`` is ``f''`` (only its size
     matters: it enters the rounding bound of the gradient), ``length`` the documented number of
     rounding steps of an implementation, ``check(params) -> params`` normalises and validates the
-    parameters, ``saved(y)`` is ``|d f' / d f| * |f|`` for ops whose frameworks' backward reuses
-    the rounded output ``y``.
+    parameters. Two hooks describe how implementations compute the op, each returning a pair
+    (for ``f``, for ``f'`` per unit ``|g|``): ``rounded(x, **params)``, the sensitivity to
+    intermediates they round to the I/O format (a saved output the backward reuses, a composite
+    of I/O-format operations), and ``cancelling(x, **params)``, the size of intermediate terms,
+    carried in the working format, that cancel in the result (``1 + erf`` in gelu's left tail).
     """
 
     def vjp(g, input, **params):
@@ -225,11 +233,13 @@ def _elementwise(*, derivative: Callable, curvature: Callable, length: float,
     def wrap(forward: Callable):
         def error_terms(g, input, **params):
             output, slope = forward(input, **params), derivative(input, **params)
-            value = np.abs(input * slope) + np.abs(output)
-            gradient = np.abs(g) * (np.abs(slope) + np.abs(input * curvature(input, **params)))
-            rounded = np.abs(g) * saved(output) if saved else 0.0
-            return {"output": ErrorTerms(value, length),
-                    "input": ErrorTerms(gradient, length, rounded=rounded)}
+            io_value, io_slope = rounded(input, **params)
+            parts_value, parts_slope = cancelling(input, **params)
+            value = np.abs(input * slope) + np.abs(output) + parts_value
+            gradient = np.abs(g) * (np.abs(slope) + np.abs(input * curvature(input, **params))
+                                    + parts_slope)
+            return {"output": ErrorTerms(value, length, rounded=io_value),
+                    "input": ErrorTerms(gradient, length, rounded=np.abs(g) * io_slope)}
 
         return register(vjp=vjp, validate=validate, space=space or _unary_space(),
                         error_terms=error_terms, kinks=kinks)(forward)
@@ -553,12 +563,16 @@ def _sigmoid_curvature(x):
     return s * s_neg * (s_neg - s)
 
 
-def _sigmoid_saved(y):
-    return np.abs(1.0 - 2.0 * y) * np.abs(y)
+def _sigmoid_rounded(x):
+    """The backward ``(g * (1 - y)) * y`` in the I/O format from the rounded saved output ``y``
+    (torch's float16 kernel): ``|1 - 2y| y`` for ``y``, ``y (1 - y)`` for each of ``1 - y`` and
+    ``g (1 - y)``."""
+    s, s_neg = _logistic(x)
+    return 0.0, s * (np.abs(s_neg - s) + 2.0 * s_neg)
 
 
 @_elementwise(derivative=_sigmoid_slope, curvature=_sigmoid_curvature, length=3,
-              saved=_sigmoid_saved)
+              rounded=_sigmoid_rounded)
 def sigmoid(input):
     """Logistic sigmoid.
 
@@ -586,7 +600,14 @@ def _logsigmoid_curvature(x):
     return -_sigmoid_slope(x)
 
 
-@_elementwise(derivative=_logsigmoid_slope, curvature=_logsigmoid_curvature, length=3)
+def _logsigmoid_rounded(x):
+    """The backward from the forward's buffer ``e = exp(-|x|)`` rounded to the I/O format
+    (torch's kernel): ``|d sigmoid(-x) / d e| e = sigmoid'(x)``."""
+    return 0.0, _sigmoid_slope(x)
+
+
+@_elementwise(derivative=_logsigmoid_slope, curvature=_logsigmoid_curvature, length=3,
+              rounded=_logsigmoid_rounded)
 def logsigmoid(input):
     """Logarithm of the logistic sigmoid.
 
@@ -711,11 +732,13 @@ def _tanh_curvature(x):
     return -2.0 * np.tanh(x) * _tanh_slope(x)
 
 
-def _tanh_saved(y):
-    return 2.0 * y * y
+def _tanh_rounded(x):
+    """The backward ``g (1 - y**2)`` from the rounded saved output ``y``: ``2 y**2``."""
+    y = np.tanh(x)
+    return 0.0, 2.0 * y * y
 
 
-@_elementwise(derivative=_tanh_slope, curvature=_tanh_curvature, length=3, saved=_tanh_saved)
+@_elementwise(derivative=_tanh_slope, curvature=_tanh_curvature, length=3, rounded=_tanh_rounded)
 def tanh(input):
     """Hyperbolic tangent.
 
@@ -839,7 +862,21 @@ def _gelu_curvature(x, *, approximate):
     return pdf * (2.0 - x * x)
 
 
+def _gelu_cancelling(x, *, approximate):
+    """Frameworks compute ``x (1 + t) / 2`` with ``t = erf(x / sqrt(2))`` or
+    ``tanh(w / 2)``: ``|x t| / 2`` cancels in the left tail, and ``|t| / 2`` in the derivative's
+    ``(1 + t) / 2``; the tanh form's derivative also has ``x (1 - t**2) w' / 4``, whose
+    ``t**2`` cancels."""
+    if approximate == "tanh":
+        x, s, s_neg, w_slope = _tanh_gelu_parts(x)
+        t = np.abs(s - s_neg)
+        return 0.5 * np.abs(x) * t, 0.5 * t * (1.0 + np.abs(x) * t * w_slope)
+    t = np.abs(special.erf(x * _INV_SQRT2[0]))
+    return 0.5 * np.abs(x) * t, 0.5 * t
+
+
 @_elementwise(derivative=_gelu_slope, curvature=_gelu_curvature, length=4, check=_gelu_check,
+              cancelling=_gelu_cancelling,
               space=_unary_space(lambda draw: {"approximate": draw.choice(
                   "approximate", ("none", "tanh"))}))
 def gelu(input, *, approximate="none"):
@@ -876,7 +913,14 @@ def _atan_curvature(x):
     return -2.0 * x * slope * slope
 
 
-@_elementwise(derivative=_atan_slope, curvature=_atan_curvature, length=2)
+def _atan_rounded(x):
+    """The backward ``g / (x**2 + 1)`` in the I/O format (torch's autograd formula): ``x**2``
+    and ``x**2 + 1`` are rounded, relative errors ``x**2 / (1 + x**2)`` and 1 in the result."""
+    slope = _atan_slope(x)
+    return 0.0, slope * (1.0 + x * x * slope)
+
+
+@_elementwise(derivative=_atan_slope, curvature=_atan_curvature, length=2, rounded=_atan_rounded)
 def atan(input):
     """Arc tangent.
 
@@ -905,7 +949,17 @@ def _softsign_curvature(x):
     return -2.0 * np.sign(x) * r * r * r
 
 
-@_elementwise(derivative=_softsign_slope, curvature=_softsign_curvature, length=2)
+def _softsign_rounded(x):
+    """Frameworks compose ``x / d`` with ``d = |x| + 1`` from I/O-format operations: ``d`` is
+    rounded in the forward; the backward ``g / d - sign(x) g ((x / d) / d)`` rounds ``d`` and
+    ``g / d`` (``2 / d``), and ``d`` twice, ``x / d``, ``/ d`` and ``* g`` in the second term
+    (``5 |x| / d**2``), whose sum cancels to ``g / d**2`` for large ``|x|``."""
+    r = 1.0 / (1.0 + np.abs(x))
+    return np.abs(x) * r, r * (2.0 + 5.0 * np.abs(x) * r)
+
+
+@_elementwise(derivative=_softsign_slope, curvature=_softsign_curvature, length=2,
+              rounded=_softsign_rounded)
 def softsign(input):
     """Softsign.
 
@@ -964,10 +1018,13 @@ def _prelu_error_terms(g, input, weight):
     negative = input <= 0
     output = 2.0 * np.where(negative, slope * np.abs(input), np.abs(input))
     per_channel = input.size // weight.shape[0] if input.size else 0
+    # Frameworks round each product x g to the I/O format before the (wide) channel sum: each
+    # term carries u_out, so `rounded` is the sum of their sizes.
+    products = _prelu_channel_sum(np.where(negative, np.abs(g * input), 0.0), input, weight)
     return {"output": ErrorTerms(output, 1),
             "input": ErrorTerms(np.abs(g) * np.where(negative, slope, 1.0), 1),
             "weight": ErrorTerms(_prelu_channel_sum(np.abs(g * input), input, weight),
-                                 max(per_channel, 1), accumulate="wide")}
+                                 max(per_channel, 1), accumulate="wide", rounded=products)}
 
 
 def _prelu_space(draw) -> CaseConfig:

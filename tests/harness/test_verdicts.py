@@ -16,14 +16,12 @@ SAFE_IN_PROCESS = sorted(set(FACTORIES) - {"max_pool2d"})
 # whose 1 + x^2 overflows): the harness flags torch there today. They are listed, not hidden: the
 # test below proves they still fail, so fixing one forces moving it into the passing set.
 OPEN_FALSE_ALARMS = {
-    ("atan", "bfloat16"), ("atan", "float16"), ("batch_norm", "bfloat16"), ("batch_norm", "float16"),
+    ("batch_norm", "bfloat16"), ("batch_norm", "float16"),
     ("binary_cross_entropy_with_logits", "bfloat16"), ("binary_cross_entropy_with_logits", "float16"),
-("cross_entropy", "bfloat16"), ("cross_entropy", "float16"),
-    ("gelu", "bfloat16"), ("gelu", "float32"), ("group_norm", "bfloat16"), ("group_norm", "float16"),
+    ("cross_entropy", "bfloat16"), ("cross_entropy", "float16"),
+    ("group_norm", "bfloat16"), ("group_norm", "float16"),
     ("layer_norm", "bfloat16"), ("layer_norm", "float16"), ("log_softmax", "bfloat16"), ("log_softmax", "float16"),
-    ("logsigmoid", "bfloat16"), ("logsigmoid", "float16"), ("mse_loss", "bfloat16"), ("mse_loss", "float16"),
-    ("prelu", "bfloat16"), ("prelu", "float16"), ("sigmoid", "float16"), 
-    ("softmax", "bfloat16"), ("softsign", "bfloat16"), ("softsign", "float16"), ("softsign", "float32"),
+    ("mse_loss", "bfloat16"), ("mse_loss", "float16"), ("softmax", "bfloat16"),
 }
 PAIRS = [(op, dtype) for op in SAFE_IN_PROCESS for dtype in ("float32", "float16", "bfloat16")]
 
