@@ -73,6 +73,12 @@ def _shard(text: str) -> tuple[int, int]:
     return part - 1, parts
 
 
+def _jobs(text: str) -> int:
+    if not text.isdigit() or int(text) < 1:
+        raise argparse.ArgumentTypeError(f"--jobs {text!r}: expected a whole number >= 1, e.g. --jobs 2")
+    return int(text)
+
+
 def _merge(args: argparse.Namespace) -> int:
     """Merge JSON reports of shards into one."""
     reports = []
@@ -155,7 +161,7 @@ def _check(args: argparse.Namespace) -> int:
                              pins=dict(args.set), layout=args.layout, device=args.device,
                              timeout=args.timeout, budget=args.budget,
                              case_ids=[args.case] if args.case else None, progress=progress,
-                             shard=args.shard)
+                             shard=args.shard, jobs=args.jobs)
     except (PinError, ValueError, RuntimeError) as error:
         print(f"refops check: {error}", file=sys.stderr)
         return 2
@@ -236,6 +242,9 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("--markdown", metavar="PATH", help="write a Markdown summary")
     check.add_argument("--shard", type=_shard, default=(0, 1), metavar="I/N",
                        help="run the I-th of N deterministic shares of the cases (1-based)")
+    check.add_argument("--jobs", type=_jobs, default=1, metavar="N",
+                       help="worker processes at once, e.g. one per local core (default 1); the verdicts "
+                            "do not depend on it")
     check.add_argument("--quiet", action="store_true", help="no progress bar")
     check.set_defaults(run=_check)
 

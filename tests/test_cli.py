@@ -49,7 +49,9 @@ def test_failing_check_exits_1_with_configs_and_a_replay_that_reproduces(tmp_pat
     (["check", f"{LAYERS}:relu", "--op", "relu", "--case", "x"], "expected SEED-INDEX"),
     (["check", f"{LAYERS}:relu", "--op", "relu", "--device", "cuda"], "no CUDA device"),
     (["check", f"{LAYERS}:relu", "--op", "relu", "--dtype", "float8"], "invalid choice"),
-], ids=["bad-target", "unknown-op", "unknown-pin", "malformed-pin", "bad-case-id", "no-cuda", "bad-dtype"])
+    (["check", f"{LAYERS}:relu", "--op", "relu", "--jobs", "0"], "--jobs '0': expected a whole number >= 1"),
+], ids=["bad-target", "unknown-op", "unknown-pin", "malformed-pin", "bad-case-id", "no-cuda", "bad-dtype",
+        "bad-jobs"])
 def test_unusable_commands_exit_2_with_a_message(args, message):
     run = refops(*args)
     assert run.returncode == 2

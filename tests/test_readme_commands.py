@@ -25,6 +25,6 @@ def test_set_up_and_main_job_work_as_written(tmp_path):
     env = {k: v for k, v in os.environ.items() if k != "VIRTUAL_ENV"}
     env["PATH"] = os.pathsep.join(p for p in env["PATH"].split(os.pathsep) if ".venv" not in p)
     run = subprocess.run(["bash", "-c", script], capture_output=True, text=True, timeout=900, env=env)
-    assert run.returncode == 0, run.stdout[-3000:] + run.stderr[-3000:]
+    assert run.returncode == 0, run.stdout[:4000] + "\n[...]\n" + run.stdout[-2000:] + run.stderr[-2000:]
     assert "The correct layer passed and the slipped one was caught." in run.stdout
     assert (tmp_path / "refops-demo" / "tile_conv_slipped.html").exists()

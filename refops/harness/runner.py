@@ -6,7 +6,9 @@ sees exactly what the subject saw. Its id ``SEED-INDEX`` replays it.
 """
 from __future__ import annotations
 
+import concurrent.futures
 import dataclasses
+import queue
 import time
 from dataclasses import dataclass
 from typing import Any, Callable, Mapping
@@ -133,7 +135,8 @@ def _samplewise(op, case: Case) -> bool:
 def _job(op, case: Case, dtype: str, layout: str, device: str) -> dict:
     job = {"arrays": case.arrays, "array_order": list(op.arrays), "layer": case.config.layer,
            "params": case.params, "dtype": dtype, "layout": layout, "device": device,
-           "cotangent": case.cotangent, "batch_alone": _samplewise(op, case), "self_fd": dtype == "float64" and case.family != "tiny",
+           "cotangent": case.cotangent, "batch_alone": _samplewise(op, case),
+           "self_fd": dtype == "float64" and case.family != "tiny",
            "isolate": bool(_unsafe_in_process(op, case))}
     if job["self_fd"]:
         positional = tuple(case.arrays.get(name) for name in op.arrays)
@@ -220,7 +223,8 @@ def _defect(verdict: CaseResult) -> set[str]:
         {f.split(":")[0].split(" ")[0] for f in verdict.findings}
 
 
-def _shrink(op, verdict: CaseResult, run: Callable, dtype, layout, device, model, pins, name, op_name) -> None:
+def _shrink(op, verdict: CaseResult, run: Callable, dtype, layout, device, model, use_deviations, pins, name,
+            op_name) -> None:
     """Halve one size at a time (as pins) while the case still fails the same way."""
     seed, index = parse_case_id(verdict.case_id)
     target_defect, current, found = _defect(verdict), dict(pins), None
@@ -235,7 +239,7 @@ def _shrink(op, verdict: CaseResult, run: Callable, dtype, layout, device, model
                 case = draw_case(op, seed, index, dtype, trial)
             except (PinError, ValueError):
                 continue
-            result, _ = judge(op, case, run(_job(op, case, dtype, layout, device)), dtype, model)
+            result, _ = judge(op, case, run(_job(op, case, dtype, layout, device)), dtype, model, use_deviations)
             if result.status == "failed" and _defect(result) & target_defect:
                 smaller = (result, trial)
                 break
@@ -271,25 +275,28 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
                 pins: Mapping[str, Any] | None = None, layout: str = "contiguous", device: str = "cpu",
                 timeout: float = 60.0, budget: float | None = None, model=None,
                 case_ids: list[str] | None = None, use_deviations: bool = True,
-                shard: tuple[int, int] = (0, 1), shrink: int = 3,
+                shard: tuple[int, int] = (0, 1), shrink: int = 3, jobs: int = 1,
                 progress: Callable[[int, int], None] | None = None) -> Report:
     """Check a subject against the oracle ``op`` over drawn cases; returns a :class:`Report`.
 
-    ``target`` is ``"package.module:attr"`` / ``"path/file.py:attr"`` (run in a worker process, so a
-    crash of the subject is a verdict) or a factory callable (run in this process). The factory
-    receives the op's layer configuration as keyword arguments and returns a torch module (or a
-    callable on tensors). ``pins`` fixes configuration values; ``case_ids`` replays given cases;
-    ``shard=(I, N)`` runs the cases whose index is I modulo N (a CI matrix over N machines).
-    The first ``shrink`` failing cases are retried with halved sizes; the smallest configuration
-    that still fails the same way is attached to the case (``CaseResult.smallest``).
+    ``target`` is ``"package.module:attr"`` / ``"path/file.py:attr"`` (run in worker processes, so
+    a crash of the subject is a verdict; ``jobs`` of them run at once) or a factory callable (run in
+    this process). The factory receives the op's layer configuration as keyword arguments and
+    returns a torch module (or a callable on tensors). ``pins`` fixes configuration values;
+    ``case_ids`` replays given cases; ``shard=(I, N)`` runs the cases whose index is I modulo N (a
+    CI matrix over N machines). The first ``shrink`` failing cases are retried with halved sizes;
+    the smallest configuration that still fails the same way is attached (``CaseResult.smallest``).
+    The verdicts do not depend on ``jobs`` or ``shard``.
     """
     from .subject import LAYOUTS, run_subject
-    from .worker import Worker
     oracle = ops.get(op)
     if dtype not in DTYPES:
         raise ValueError(f"dtype={dtype!r}: expected one of {', '.join(DTYPES)}")
     if layout not in LAYOUTS:
         raise ValueError(f"layout={layout!r}: expected one of {', '.join(LAYOUTS)}")
+    if not (isinstance(jobs, int) and jobs >= 1) or (jobs > 1 and not isinstance(target, str)):
+        raise ValueError(f"jobs={jobs!r}: expected a whole number >= 1; more than one needs a TARGET string "
+                         f"(package.module:attr), whose cases run in worker processes")
     pins = {k: pinned_value(v) for k, v in (pins or {}).items()}
     # Default floor: the smallest normal number, so a subject that flushes or loses subnormal
     # results (common on accelerators) is not failed for that alone; pass a model to be stricter.
@@ -302,31 +309,72 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
     plan = [parse_case_id(c) for c in case_ids] if case_ids else \
         [(seed, i) for i in range(cases) if i % parts == part]
     drawn = [draw_case(oracle, s, i, dtype, pins) for s, i in plan]  # bad pins fail before any run
-    worker = Worker(target, timeout) if isinstance(target, str) else None
-    applied: set[str] = set()
+    chunks = [drawn[first:first + CASES_PER_MESSAGE] for first in range(0, len(drawn), CASES_PER_MESSAGE)]
     start = time.perf_counter()
-    try:
-        for first in range(0, len(drawn), CASES_PER_MESSAGE):
-            if budget is not None and time.perf_counter() - start > budget:
-                break
-            chunk = drawn[first:first + CASES_PER_MESSAGE]
-            jobs = [_job(oracle, case, dtype, layout, device) for case in chunk]
-            results = worker.run_many(jobs) if worker else [_run_here(oracle, target, case, job)
-                                                            for case, job in zip(chunk, jobs)]
-            for case, result in zip(chunk, results):
-                began = time.perf_counter()
-                verdict, used = judge(oracle, case, result, dtype, model, use_deviations)
-                verdict.seconds = result.get("seconds", 0.0) + time.perf_counter() - began
-                verdict.replay = _replay(name, op, dtype, pins, case.case_id, layout)
+    applied: set[str] = set()
+
+    def run_chunk(chunk: list[Case], worker) -> list[tuple[CaseResult, list[str]]]:
+        if budget is not None and time.perf_counter() - start > budget:
+            return []
+        jobs_ = [_job(oracle, case, dtype, layout, device) for case in chunk]
+        results = worker.run_many(jobs_) if worker else [_run_here(oracle, target, case, job)
+                                                         for case, job in zip(chunk, jobs_)]
+        judged = []
+        for case, result in zip(chunk, results):
+            began = time.perf_counter()
+            verdict, used = judge(oracle, case, result, dtype, model, use_deviations)
+            verdict.seconds = result.get("seconds", 0.0) + time.perf_counter() - began
+            verdict.replay = _replay(name, op, dtype, pins, case.case_id, layout)
+            judged.append((verdict, used))
+        return judged
+
+    with _WorkerPool(target if isinstance(target, str) else None, timeout, jobs) as pool:
+        for judged in pool.map(run_chunk, chunks):
+            for verdict, used in judged:
                 report.cases.append(verdict)
                 applied.update(used)
             if progress:
                 progress(len(report.cases), len(drawn))
-        run = worker.run if worker else (lambda job: run_subject(target, job))
+        run = pool.run_one if isinstance(target, str) else (lambda job: run_subject(target, job))
         for verdict in [c for c in report.cases if c.status == "failed"][:shrink]:
-            _shrink(oracle, verdict, run, dtype, layout, device, model, pins, name, op)
-    finally:
-        if worker:
-            worker.close()
+            _shrink(oracle, verdict, run, dtype, layout, device, model, use_deviations, pins, name, op)
     report.deviations = sorted(applied)
     return report
+
+
+class _WorkerPool:
+    """``size`` worker processes for a TARGET string (none for a callable run in this process).
+    ``map(fn, items)`` calls ``fn(item, worker)`` with a free worker, results in order."""
+
+    def __init__(self, target: str | None, timeout: float, size: int):
+        from .worker import Worker
+        self.free: queue.Queue = queue.Queue()
+        self.workers = [Worker(target, timeout) for _ in range(size)] if target else []
+        for worker in self.workers:
+            self.free.put(worker)
+
+    def __enter__(self) -> "_WorkerPool":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        for worker in self.workers:
+            worker.close()
+
+    def _with_worker(self, fn: Callable, item):
+        if not self.workers:
+            return fn(item, None)
+        worker = self.free.get()
+        try:
+            return fn(item, worker)
+        finally:
+            self.free.put(worker)
+
+    def map(self, fn: Callable, items: list):
+        if len(self.workers) <= 1:
+            yield from (self._with_worker(fn, item) for item in items)
+            return
+        with concurrent.futures.ThreadPoolExecutor(len(self.workers)) as threads:
+            yield from threads.map(lambda item: self._with_worker(fn, item), items)
+
+    def run_one(self, job: dict) -> dict:
+        return self._with_worker(lambda item, worker: worker.run(item), job)
