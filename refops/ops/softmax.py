@@ -58,13 +58,18 @@ def _softmax_error_terms(g, input, *, dim):
     abs_dot = np.sum(np.abs(g) * s, axis=dim, keepdims=True)
     # exp(z) carries a relative error |z| u; the normalising sum spreads sum s |z| u to all.
     output_error = s * (1 + np.abs(z) + spread)
+    # Some kernels (torch's CPU half formats along a non-last dim) round exp(z) to the I/O
+    # format before normalising: |d s_i / d e_j| e_j summed over j is 2 s_i (1 - s_i).
+    exp_rounded = 2 * s * (1 - s)
     # The backward reuses the computed s: its error (output_error) propagates through
-    # s (g - dot) and through dot = sum g s; the rounded saved output adds `rounded`.
+    # s (g - dot) and through dot = sum g s; the saved output, rounded to the I/O format after
+    # its own rounded intermediates (s + exp_rounded in u_out), adds `rounded`.
     propagated = output_error * np.abs(g - dot) + s * np.sum(output_error * np.abs(g), axis=dim, keepdims=True)
+    saved = s + exp_rounded
     return {
-        "output": ErrorTerms(output_error, n),
+        "output": ErrorTerms(output_error, n, rounded=exp_rounded),
         "input": ErrorTerms(s * (np.abs(g) + abs_dot) + propagated, n,
-                            rounded=s * (np.abs(g - dot) + abs_dot)),
+                            rounded=saved * np.abs(g - dot) + s * np.sum(saved * np.abs(g), axis=dim, keepdims=True)),
     }
 
 
@@ -89,7 +94,8 @@ def softmax(input, *, dim):
     -----
     Error terms: output M = ``s (1 + |z| + sum s|z|)`` with ``z = x - m`` (exp's conditioning plus
     the normalising sum), k = the length of ``dim``; gradient M = ``s (|g| + sum |g| s)``, k = the
-    length of ``dim``, and a ``rounded`` term for frameworks that reuse the rounded saved output.
+    length of ``dim``; ``rounded`` terms for kernels that round ``exp(z)`` to the I/O format
+    (``2 s (1 - s)``) and for backward passes that reuse the rounded saved output.
     """
     z, log_sum = shifted_logits(input, dim)
     return np.exp(z - log_sum)
@@ -108,13 +114,15 @@ def _log_softmax_error_terms(g, input, *, dim):
     spread = np.sum(p * np.abs(z), axis=dim, keepdims=True)
     total = np.sum(g, axis=dim, keepdims=True)
     abs_total = np.sum(np.abs(g), axis=dim, keepdims=True)
+    # torch's CPU half formats (along the last dim) round the sum of exp(z) and its log to the
+    # I/O format before subtracting: errors 1 (d log s / d s * s) and |log_sum|.
+    lse_rounded = 1 + np.abs(log_sum)
     return {
         # z = x - m is rounded (|z|), and log_sum carries the sum's error (1 + sum p|z|).
-        # Frameworks round log_sum to the I/O format before subtracting: `rounded` = |log_sum| + |z|.
-        "output": ErrorTerms(np.abs(z) + np.abs(log_sum) + 1 + spread, n,
-                             rounded=np.abs(log_sum) + np.abs(z)),
-        # exp(out) from the rounded saved output has relative error |out| u_out.
-        "input": ErrorTerms(np.abs(g) + p * abs_total, n, rounded=p * np.abs(total) * (1 + np.abs(out))),
+        "output": ErrorTerms(np.abs(z) + np.abs(log_sum) + 1 + spread, n, rounded=lse_rounded),
+        # exp(out) from the rounded saved output has relative error (|out| + lse_rounded) u_out.
+        "input": ErrorTerms(np.abs(g) + p * abs_total, n,
+                            rounded=p * np.abs(total) * (1 + np.abs(out) + lse_rounded)),
     }
 
 
@@ -139,8 +147,9 @@ def log_softmax(input, *, dim):
     -----
     Logits of any magnitude (``±1e4`` and beyond) give finite results: the shifted sum is at
     least 1. Error terms: output M = ``|z| + |lse| + 1 + sum p|z|``, k = the length of ``dim``,
-    ``rounded`` = ``|lse| + |z|`` (the log-sum-exp rounded to the I/O format before subtracting);
-    gradient M = ``|g| + p sum|g|``, ``rounded`` = ``p |sum g| (1 + |out|)``.
+    ``rounded`` = ``1 + |lse|`` (the sum and its log rounded to the I/O format before
+    subtracting); gradient M = ``|g| + p sum|g|``, ``rounded`` = ``p |sum g| (2 + |out| + |lse|)``
+    (the rounded saved output).
     """
     z, log_sum = shifted_logits(input, dim)
     return z - log_sum

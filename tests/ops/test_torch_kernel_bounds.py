@@ -25,6 +25,7 @@ PAIRS = [
     ("logsigmoid", "float16"), ("logsigmoid", "bfloat16"), ("softsign", "float16"),
     ("softsign", "bfloat16"), ("softsign", "float32"), ("gelu", "float32"), ("gelu", "bfloat16"),
     ("prelu", "float16"), ("prelu", "bfloat16"),
+    ("softmax", "bfloat16"), ("log_softmax", "bfloat16"), ("log_softmax", "float16"),
 ]
 # A relative nudge of the gradients that the bound must catch: 4 ulps in the half formats; the
 # float32 bound of an elementwise op is ~10 u (c(k) = 5 sqrt(k) of the wide term), so 16 ulps.
@@ -64,7 +65,8 @@ class _Nudge(torch.autograd.Function):
 
 
 def nudged(op: str, factor: float):
-    """torch's layer with every gradient (input and parameters) scaled by ``factor``."""
+    """torch's layer with its output and every gradient (input and parameters) scaled by
+    ``factor`` (the input gradient by ``factor**2``: the output's scaling is differentiated)."""
 
     def make(**layer):
         module = FACTORIES[op](**layer)
@@ -72,20 +74,21 @@ def nudged(op: str, factor: float):
             parameter.register_hook(lambda g: g * factor)
         module.register_forward_pre_hook(
             lambda _, args: (_Nudge.apply(args[0], factor),) + tuple(args[1:]))
+        module.register_forward_hook(lambda _, args, output: output * factor)
         return module
 
     return make
 
 
 @pytest.mark.parametrize("op, dtype", PAIRS)
-def test_gradients_off_by_a_few_ulps_are_caught(op, dtype):
-    # Teeth: torch's kernels with gradients scaled by 1 + NUDGE_ULPS ulps (of 1) are flagged in
-    # most cases, for every gradient tensor; the output is left alone and keeps passing.
+def test_results_off_by_a_few_ulps_are_caught(op, dtype):
+    # Teeth: torch's kernels with the output and gradients scaled by 1 + NUDGE_ULPS ulps (of 1)
+    # are flagged in most cases, for every tensor.
     factor = 1 + NUDGE_ULPS[dtype] * get_format(dtype).eps
     report = check_layer(nudged(op, factor), op, cases=24, seed=5, dtype=dtype, shrink=0)
     flagged = collections.Counter(c.tensor for case in report.cases for c in case.comparisons
                                   if not c.passed)
-    gradients = set(shares_by_tensor(report)) - {"output"}
-    assert gradients and flagged["output"] == 0
-    for tensor in gradients:
+    tensors = set(shares_by_tensor(report))
+    assert {"output", "input"} <= tensors
+    for tensor in tensors:
         assert flagged[tensor] >= 12, (tensor, flagged)
