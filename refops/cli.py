@@ -4,6 +4,7 @@ from __future__ import annotations
 import argparse
 import inspect
 import json
+import os
 import sys
 import textwrap
 
@@ -104,14 +105,24 @@ def _merge(args: argparse.Namespace) -> int:
     return 0 if merged["passed"] else 1
 
 
-def _record(args: argparse.Namespace) -> int:
-    from .harness.replay import record_model
-    from .harness.subject import TargetError
+def _input_shapes(args: argparse.Namespace, command: str) -> list[tuple[int, ...]] | None:
+    """``--input-shape 2,1,16,16`` (repeatable) as tuples; None (after a message) when malformed."""
     try:
         shapes = [tuple(int(n) for n in text.split(",")) for text in args.input_shape]
     except ValueError:
-        print(f"refops record: --input-shape {args.input_shape}: expected comma-separated sizes, e.g. 2,1,16,16",
-              file=sys.stderr)
+        shapes = []
+    if not shapes or any(not s or min(s) < 1 for s in shapes):
+        print(f"refops {command}: --input-shape {args.input_shape}: expected positive comma-separated sizes, "
+              f"e.g. --input-shape 2,1,16,16", file=sys.stderr)
+        return None
+    return shapes
+
+
+def _record(args: argparse.Namespace) -> int:
+    from .harness.replay import record_model
+    from .harness.subject import TargetError
+    shapes = _input_shapes(args, "record")
+    if shapes is None:
         return 2
     try:
         path = record_model(args.target, shapes, args.output, dtype=args.dtype, seed=args.seed)
@@ -122,65 +133,98 @@ def _record(args: argparse.Namespace) -> int:
     return 0
 
 
+def _emit(report, args: argparse.Namespace) -> int:
+    """Print the report, write the files asked for; the exit status of a finished check."""
+    from .report.text import render_text
+    print(render_text(report))
+    if getattr(args, "json", None):
+        with open(args.json, "w", encoding="utf-8") as stream:
+            json.dump(report.to_json(), stream, indent=1)
+    if getattr(args, "junit", None):
+        from .report.junit import write_junit
+        write_junit(report, args.junit)
+    if getattr(args, "html", None):
+        from .report.html import write_html
+        print(f"HTML report written to {write_html(report, args.html)}")
+    if getattr(args, "markdown", None):
+        from .report.markdown import write_markdown
+        write_markdown(report, args.markdown)
+    return 0 if report.passed else 1
+
+
 def _replay_bundle(args: argparse.Namespace) -> int:
     from .golden import BundleError
     from .harness.replay import replay_model
     from .harness.subject import TargetError
-    from .report.text import render_text
     try:
         report = replay_model(args.target, args.bundle, dtype=args.dtype, factor=args.factor)
     except (TargetError, BundleError, ValueError) as error:
         print(f"refops replay: {error}", file=sys.stderr)
         return 2
-    print(render_text(report))
-    if args.json:
-        with open(args.json, "w", encoding="utf-8") as stream:
-            json.dump(report.to_json(), stream, indent=1)
-    return 0 if report.passed else 1
+    return _emit(report, args)
+
+
+_OP_ONLY = {"--set": lambda a: bool(a.set), "--shard": lambda a: a.shard != (0, 1),
+            "--jobs": lambda a: a.jobs != 1, "--layout": lambda a: a.layout != "contiguous",
+            "--device": lambda a: a.device != "cpu", "--budget": lambda a: a.budget is not None,
+            "--dtype": lambda a: a.dtype not in (None, "float64")}
+
+
+def _check_mode_error(args: argparse.Namespace) -> str:
+    """Why this combination of options cannot run ("" when it can)."""
+    if args.op is None and not args.input_shape:
+        return ("give --op OP (an oracle; `refops ops` lists them) or, for an operator without one, "
+                "--input-shape (its backward is checked against finite differences of its own forward)")
+    if args.op is not None and args.input_shape:
+        return "--input-shape is for a check without --op; with --op every case draws its own shapes"
+    given = [option for option, used in _OP_ONLY.items() if args.op is None and used(args)]
+    if given:
+        return (f"{', '.join(given)}: only with --op; a check without --op runs the subject in float64 "
+                f"on the given input shapes")
+    return ""
 
 
 def _check(args: argparse.Namespace) -> int:
     from .harness import check_layer
+    from .harness.selfcheck import check_self
     from .harness.subject import TargetError, load_factory
     from .ops._space import PinError
-    from .report.text import render_text
+    problem = _check_mode_error(args)
+    if problem:
+        print(f"refops check: {problem}", file=sys.stderr)
+        return 2
     if args.device != "cpu":
         import torch
         if args.device.startswith("cuda") and not torch.cuda.is_available():
             print(f"refops check: --device {args.device}: no CUDA device is available here", file=sys.stderr)
             return 2
+    shapes = _input_shapes(args, "check") if args.input_shape else None
+    if args.input_shape and shapes is None:
+        return 2
     try:
-        ops.get(args.op)
+        if args.op is not None:
+            ops.get(args.op)
         load_factory(args.target)
     except (ops.UnknownOpError, TargetError) as error:
         print(f"refops check: {error}", file=sys.stderr)
         return 2
     progress = _Progress(not args.quiet)
+    case_ids = [args.case] if args.case else None
     try:
-        report = check_layer(args.target, args.op, cases=args.cases, seed=args.seed, dtype=args.dtype,
-                             pins=dict(args.set), layout=args.layout, device=args.device,
-                             timeout=args.timeout, budget=args.budget,
-                             case_ids=[args.case] if args.case else None, progress=progress,
-                             shard=args.shard, jobs=args.jobs)
+        if args.op is None:
+            report = check_self(args.target, shapes, cases=10 if args.cases is None else args.cases, seed=args.seed, timeout=args.timeout,
+                                case_ids=case_ids, progress=progress)
+        else:
+            report = check_layer(args.target, args.op, cases=50 if args.cases is None else args.cases, seed=args.seed,
+                                 dtype=args.dtype or "float32", pins=dict(args.set), layout=args.layout,
+                                 device=args.device, timeout=args.timeout, budget=args.budget,
+                                 case_ids=case_ids, progress=progress, shard=args.shard, jobs=args.jobs)
     except (PinError, ValueError, RuntimeError) as error:
         print(f"refops check: {error}", file=sys.stderr)
         return 2
     finally:
         progress.close()
-    print(render_text(report))
-    if args.json:
-        with open(args.json, "w", encoding="utf-8") as stream:
-            json.dump(report.to_json(), stream, indent=1)
-    if args.junit:
-        from .report.junit import write_junit
-        write_junit(report, args.junit)
-    if args.html:
-        from .report.html import write_html
-        print(f"HTML report written to {write_html(report, args.html)}")
-    if args.markdown:
-        from .report.markdown import write_markdown
-        write_markdown(report, args.markdown)
-    return 0 if report.passed else 1
+    return _emit(report, args)
 
 
 DEMO_PINS = {"padding": "same", "stride": 1, "padding_mode": "zeros"}
@@ -225,10 +269,14 @@ def build_parser() -> argparse.ArgumentParser:
 
     check = commands.add_parser("check", help="check a layer factory against an oracle over drawn cases")
     check.add_argument("target", help="package.module:attr or path/to/file.py:attr (a layer factory)")
-    check.add_argument("--op", required=True, help="the oracle to compare with (refops ops lists them)")
-    check.add_argument("--cases", type=int, default=50, help="number of drawn cases (default 50)")
+    check.add_argument("--op", help="the oracle to compare with (refops ops lists them); without it, "
+                                    "--input-shape checks the backward against the subject's own forward")
+    check.add_argument("--input-shape", action="append", default=[], metavar="SIZES",
+                       help="without --op: an input's shape, e.g. 2,3,8,8 (repeatable, one per input)")
+    check.add_argument("--cases", type=int, help="number of drawn cases (default 50; 10 without --op)")
     check.add_argument("--seed", type=int, default=0)
-    check.add_argument("--dtype", default="float32", choices=["float64", "float32", "float16", "bfloat16"])
+    check.add_argument("--dtype", choices=["float64", "float32", "float16", "bfloat16"],
+                       help="the subject's format (default float32; float64 without --op)")
     check.add_argument("--set", type=_pin, action="append", default=[], metavar="NAME=VALUE",
                        help="pin a configuration value (JSON, else a string); repeatable")
     check.add_argument("--case", help="replay one case by its id (SEED-INDEX, as printed)")
@@ -279,7 +327,11 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
-    return args.run(args)
+    try:
+        return args.run(args)
+    except BrokenPipeError:  # the reader went away (``refops check ... | head``): stop quietly
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 1
 
 
 if __name__ == "__main__":

@@ -50,8 +50,13 @@ def test_failing_check_exits_1_with_configs_and_a_replay_that_reproduces(tmp_pat
     (["check", f"{LAYERS}:relu", "--op", "relu", "--device", "cuda"], "no CUDA device"),
     (["check", f"{LAYERS}:relu", "--op", "relu", "--dtype", "float8"], "invalid choice"),
     (["check", f"{LAYERS}:relu", "--op", "relu", "--jobs", "0"], "--jobs '0': expected a whole number >= 1"),
+    (["check", f"{LAYERS}:relu"], "give --op OP"),
+    (["check", f"{LAYERS}:relu", "--op", "relu", "--input-shape", "2,3"], "--input-shape is for a check without --op"),
+    (["check", f"{LAYERS}:relu", "--input-shape", "2,3", "--set", "x=1"], "--set: only with --op"),
+    (["check", f"{LAYERS}:relu", "--input-shape", "2,3", "--dtype", "float16"], "--dtype: only with --op"),
+    (["check", f"{LAYERS}:relu", "--input-shape", "2,x"], "expected positive comma-separated sizes"),
 ], ids=["bad-target", "unknown-op", "unknown-pin", "malformed-pin", "bad-case-id", "no-cuda", "bad-dtype",
-        "bad-jobs"])
+        "bad-jobs", "no-op-no-shape", "op-and-shape", "pin-without-op", "half-without-op", "bad-shape"])
 def test_unusable_commands_exit_2_with_a_message(args, message):
     run = refops(*args)
     assert run.returncode == 2
@@ -93,3 +98,20 @@ def test_shards_cover_the_unsharded_run_and_merge(tmp_path):
     assert merged["cases"] == whole["cases"] == 9
     assert sorted(f["case_id"] for f in merged["failures"]) == sorted(f["case_id"] for f in whole["failures"])
     assert merged["passed"] is whole["passed"] is False and run.returncode == 1
+
+
+def test_without_an_oracle_the_backward_is_checked_against_the_forward(tmp_path):
+    right = refops("check", "tests/harness/no_oracle_layers.py:gated_unit", "--input-shape", "2,3,4", "--cases", "2",
+                   "--json", str(tmp_path / "right.json"), "--quiet")
+    assert right.returncode == 0, right.stdout + right.stderr
+    assert "against finite differences of its own forward in float64" in right.stdout
+    data = json.loads((tmp_path / "right.json").read_text())
+    assert data["passed"] is True and data["cases"] == 2 and data["op"] is None
+    slipped = refops("check", "tests/harness/no_oracle_layers.py:squared_distance_slipped", "--input-shape", "3,4",
+                     "--input-shape", "3,4", "--cases", "2", "--junit", str(tmp_path / "s.xml"), "--quiet")
+    assert slipped.returncode == 1 and "finite differences of its forward for input1" in slipped.stdout
+    replay = [line.split("replay: ")[1] for line in slipped.stdout.splitlines() if "replay: " in line][0]
+    again = refops(*replay.split()[1:])
+    assert again.returncode == 1 and "1 cases (1 failed)" in again.stdout
+    suite = ET.parse(tmp_path / "s.xml").getroot()
+    assert suite.get("name") == "refops.no-oracle.float64" and suite.get("failures") == "2"

@@ -20,17 +20,12 @@ from ..numerics.compare import compare
 from ..numerics.formats import get_format, round_to
 from ..numerics.tolerance import Calibrated
 from .runner import DTYPES
-from .subject import load_factory, run_subject
+from .subject import load_factory, model_job, model_parameters, run_subject
 from .verdict import CaseResult, Report
 
 
-def _job(arrays: dict, inputs: list[str], cotangent: np.ndarray, dtype: str) -> dict:
-    return {"arrays": arrays, "array_order": inputs, "layer": {}, "params": {}, "dtype": dtype,
-            "layout": "contiguous", "device": "cpu", "cotangent": cotangent}
-
-
 def _run(factory, arrays, inputs, cotangent, dtype) -> dict:
-    result = run_subject(factory, _job(arrays, inputs, cotangent, dtype))
+    result = run_subject(factory, model_job(arrays, inputs, cotangent, dtype))
     if result.get("error"):
         raise RuntimeError(f"the model failed on the trusted backend: {result['error']}")
     return {"output": result["output"], **{f"grad.{k}": v for k, v in result["grads"].items() if v is not None}}
@@ -39,16 +34,13 @@ def _run(factory, arrays, inputs, cotangent, dtype) -> dict:
 def record_model(target: str, input_shapes: Sequence[tuple[int, ...]], directory, *, dtype: str = "float32",
                  seed: int = 0) -> Path:
     """Record the trusted run of ``target`` on inputs of ``input_shapes``; returns the bundle folder."""
-    import torch
     if dtype not in DTYPES:
         raise ValueError(f"dtype={dtype!r}: expected one of {', '.join(DTYPES)}")
     factory = load_factory(target)
     rng = np.random.default_rng(seed)
     inputs = [f"input{i}" for i in range(len(input_shapes))]
     arrays = {name: round_to(rng.standard_normal(shape), dtype) for name, shape in zip(inputs, input_shapes)}
-    torch.manual_seed(seed)
-    for name, parameter in factory().named_parameters():
-        arrays[name] = round_to(parameter.detach().double().numpy(), dtype)
+    arrays.update({name: round_to(value, dtype) for name, value in model_parameters(factory, seed).items()})
     probe = _run(factory, arrays, inputs, np.zeros(0), "float64")  # output shape for the cotangent
     cotangent = round_to(rng.standard_normal(probe["output"].shape), dtype)
     reference = _run(factory, arrays, inputs, cotangent, "float64")
@@ -72,8 +64,9 @@ def replay_model(target: str, directory, *, dtype: str | None = None, factor: fl
     arrays = {k: np.array(v) for k, v in bundle.arrays.items()
               if not k.startswith("reference.") and k != "cotangent"}
     factory = load_factory(target)
-    result = run_subject(factory, _job(arrays, inputs, np.array(bundle.arrays["cotangent"]), dtype))
-    report = Report(op=None, target=target, dtype=dtype, seed=manifest["seed"], model=model.describe())
+    result = run_subject(factory, model_job(arrays, inputs, np.array(bundle.arrays["cotangent"]), dtype))
+    report = Report(op=None, target=target, dtype=dtype, seed=manifest["seed"], model=model.describe(),
+                    against="the recorded trusted run")
     case = CaseResult(case_id="replay", config=manifest["config"], values="recorded", status="passed",
                       replay=f"refops replay {target} {directory} --dtype {dtype}")
     if result.get("error"):

@@ -101,6 +101,24 @@ def _forward_backward(subject, inputs: dict, params: dict, cotangent, as_module:
     return output, grads
 
 
+def model_job(arrays: dict, inputs: list[str], cotangent: np.ndarray, dtype: str, **checks) -> dict:
+    """The job for a layer built by a factory called with no arguments (no op: a whole model, or an
+    operator without an oracle); ``arrays`` holds the inputs and the parameters by name."""
+    return {"arrays": arrays, "array_order": inputs, "layer": {}, "params": {}, "dtype": dtype,
+            "layout": "contiguous", "device": "cpu", "cotangent": cotangent, **checks}
+
+
+def model_parameters(factory: Callable, seed: int) -> dict[str, np.ndarray]:
+    """The parameters of ``factory()``, built with torch's generator seeded by ``seed``, as
+    float64 arrays by name (none for a subject that is not a module)."""
+    torch = _torch()
+    torch.manual_seed(seed)
+    subject = factory()
+    if not isinstance(subject, torch.nn.Module):
+        return {}
+    return {name: p.detach().to(torch.float64).numpy().copy() for name, p in subject.named_parameters()}
+
+
 def run_subject(factory: Callable, job: dict) -> dict:
     """Run one case; ``job`` holds op arrays, layer config, dtype, layout, device and cotangent.
 
@@ -142,9 +160,9 @@ def _self_fd_findings(subject, inputs, params, as_module, first: dict, job: dict
     """The float64 subject's own backward against finite differences of its own forward."""
     from ..numerics.finite_diff import vjp_fd_agreement
     fn = _numpy_function(subject, inputs, params, as_module)
-    arrays = {n: _to_numpy(t) for n, t in {**inputs, **params}.items()
-              if t is not None and t.is_floating_point() and first.get(n) is not None}
-    gradients = {n: first[n] for n in arrays}
+    arrays = {n: _to_numpy(t) for n, t in {**inputs, **params}.items() if t is not None and t.is_floating_point()}
+    # No gradient (torch's None) means zero: finite differences then show whether it should be.
+    gradients = {n: np.zeros_like(a) if first.get(n) is None else first[n] for n, a in arrays.items()}
     agreements = vjp_fd_agreement(fn, lambda g, **a: gradients, arrays, rng=np.random.default_rng(0),
                                   kink_distance=job.get("kink_distance"), cotangent=job["cotangent"])
     return [f"the subject's own backward disagrees with finite differences of its forward for "

@@ -49,6 +49,12 @@ class Report:
     model: str
     cases: list = field(default_factory=list)
     deviations: list = field(default_factory=list)
+    against: str = ""  # what the subject was checked against when no op is: a recorded run, ...
+
+    @property
+    def reference(self) -> str:
+        """The op, or what stood in for an oracle."""
+        return self.op or self.against or "a recorded trusted run"
 
     @property
     def passed(self) -> bool:
@@ -65,7 +71,8 @@ class Report:
         return counts
 
     def to_json(self) -> dict:
-        return {"passed": self.passed, "cases": len(self.cases), "op": self.op, "target": self.target,
+        return {"passed": self.passed, "cases": len(self.cases), "op": self.op, "against": self.reference,
+                "target": self.target,
                 "dtype": self.dtype, "seed": self.seed, "model": self.model, "summary": self.summary(),
                 "deviations": list(self.deviations), "failures": [c.to_json() for c in self.failures]}
 

@@ -75,12 +75,12 @@ def _g(value: float) -> str:
 
 def _summary(report) -> str:
     counts = report.summary()
-    rows = [["op", report.op or "(recorded trusted run)"], ["subject", report.target],
+    rows = [["op", report.reference], ["subject", report.target],
             ["format", report.dtype], ["seed", report.seed], ["tolerance model", report.model],
             ["cases", len(report.cases)], *[[f"cases {status}", n] for status, n in sorted(counts.items())]]
     deviations = "".join(f"<li>{_e(d)}</li>" for d in report.deviations) or "<li>none</li>"
     status = "passed" if report.passed else "failed"
-    return (f"<h1>refops report: {_e(report.target)} against {_e(report.op or 'a recorded run')} "
+    return (f"<h1>refops report: {_e(report.target)} against {_e(report.reference)} "
             f"{_verdict(status.upper())}</h1>"
             f'<p class="caution"><strong>Caution.</strong> {_e(CAUTION)}</p>'
             f"<h2>Summary</h2>{_table(None, rows)}"
@@ -165,7 +165,7 @@ def render_html(report, *, pictured: int = PICTURED) -> str:
     """
     pictured = _checks.as_int("pictured", pictured, min_value=0)
     body = [_summary(report), _failures(report, pictured), _bound_usage(report), _all_cases(report)]
-    title = f"refops: {report.target} against {report.op or 'a recorded run'}"
+    title = f"refops: {report.target} against {report.reference}"
     return (f'<!DOCTYPE html><html lang="en"><head><meta charset="utf-8"><title>{_e(title)}</title>'
             f"<style>{STYLE}</style></head><body>{''.join(body)}</body></html>")
 

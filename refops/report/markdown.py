@@ -47,7 +47,7 @@ def _row(cells) -> str:
 
 def _summary(report) -> list[str]:
     counts = ", ".join(f"{n} {_text(status)}" for status, n in sorted(report.summary().items()))
-    rows = [("op", _text(report.op or "(recorded trusted run)")), ("subject", _text(report.target)),
+    rows = [("op", _text(report.reference)), ("subject", _text(report.target)),
             ("format", _text(report.dtype)), ("seed", _text(report.seed)),
             ("tolerance model", _text(report.model)), ("cases", f"{len(report.cases)} ({counts or 'none run'})")]
     lines = [_row(["setting", "value"]), _row(["---", "---"]), *(_row(r) for r in rows), ""]

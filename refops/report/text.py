@@ -42,8 +42,7 @@ def render_text(report, *, max_cases: int = 10) -> str:
         lines.append(f"... {len(report.failures) - max_cases} more failing cases (see --json)")
     counts = ", ".join(f"{v} {k}" for k, v in sorted(report.summary().items()))
     shares = [c.share_max for case in report.cases if case.passed for c in case.comparisons]
-    against = report.op or "the recorded trusted run"
-    lines.append(f"refops: {report.target} against {against} in {report.dtype}, seed {report.seed}: "
+    lines.append(f"refops: {report.target} against {report.reference} in {report.dtype}, seed {report.seed}: "
                  f"{len(report.cases)} cases ({counts or 'none run'})")
     if shares:
         lines.append(f"  passing cases used at most {max(shares):.3g} of the bound (median "
