@@ -47,11 +47,17 @@ class _Reduction:
         scale = 1.0 / self.count if self.kind == "mean" else 1.0
         return np.broadcast_to(g * scale, self.shape)
 
-    def output_terms(self, magnitude: np.ndarray, length: float) -> ErrorTerms:
-        """Per-element terms of length ``length``, plus the reduction's own sum of ``count`` terms."""
+    def output_terms(self, magnitude: np.ndarray, length: float, rounded=0.0, value=0.0) -> ErrorTerms:
+        """Per-element terms of length ``length``, plus the reduction's own sum of ``count`` terms.
+
+        ``rounded`` is each element's sensitivity to intermediates rounded to the I/O format; a
+        reduction also sums the per-element losses after rounding them to that format
+        (``value`` = their sizes), as frameworks that reduce a loss tensor of the I/O dtype do.
+        """
         if self.kind == "none":
-            return ErrorTerms(magnitude, length)
-        return ErrorTerms(self.apply(magnitude), length + self.count)
+            return ErrorTerms(magnitude, length, rounded=rounded)
+        per_element = np.broadcast_to(rounded + value, self.shape)
+        return ErrorTerms(self.apply(magnitude), length + self.count, rounded=self.apply(per_element))
 
 
 def _reduction_output_shape(arrays: dict, params: dict) -> tuple[int, ...]:
@@ -87,8 +93,12 @@ def _mse_error_terms(g, input, target, *, reduction):
     d = np.abs(input - target)
     grad = 2.0 * d * np.abs(r.spread(g))
     # The difference is rounded (relative u), so its square carries 2u: M = 2 d^2 per element.
-    return {"output": r.output_terms(2.0 * d * d, 2),
-            "input": ErrorTerms(grad, 2), "target": ErrorTerms(grad, 2)}
+    # Frameworks round it to the I/O format (2 d^2 in u_out), and the squares before reducing
+    # (d^2); the backward (torch: (scale * d) * g in the I/O format) rounds the difference
+    # (|grad|) and, for a mean, the scale 2 / count and its product with d (2 |grad| more).
+    rounded = grad * (3.0 if reduction == "mean" else 1.0)
+    return {"output": r.output_terms(2.0 * d * d, 2, rounded=2.0 * d * d, value=d * d),
+            "input": ErrorTerms(grad, 2, rounded=rounded), "target": ErrorTerms(grad, 2, rounded=rounded)}
 
 
 def _mse_space(draw) -> CaseConfig:
