@@ -119,14 +119,23 @@ def _input_shapes(args: argparse.Namespace, command: str) -> list[tuple[int, ...
 
 
 def _record(args: argparse.Namespace) -> int:
-    from .harness.replay import record_model
+    from .harness.replay import record_layer, record_model
     from .harness.subject import TargetError
-    shapes = _input_shapes(args, "record")
-    if shapes is None:
+    from .ops._space import PinError
+    if (args.op is None) == (not args.input_shape) or (args.op is None and args.set):
+        print("refops record: give --op OP (a layer, cases drawn as by `refops check`) or --input-shape "
+              "(a whole model), not both; --set only with --op", file=sys.stderr)
         return 2
     try:
-        path = record_model(args.target, shapes, args.output, dtype=args.dtype, seed=args.seed)
-    except (TargetError, ValueError, RuntimeError) as error:
+        if args.op is not None:
+            path = record_layer(args.target, args.op, args.output, cases=args.cases, seed=args.seed,
+                                dtype=args.dtype, pins=dict(args.set))
+        else:
+            shapes = _input_shapes(args, "record")
+            if shapes is None:
+                return 2
+            path = record_model(args.target, shapes, args.output, dtype=args.dtype, seed=args.seed)
+    except (TargetError, ops.UnknownOpError, PinError, ValueError, RuntimeError) as error:
         print(f"refops record: {error}", file=sys.stderr)
         return 2
     print(f"bundle written to {path}")
@@ -154,10 +163,10 @@ def _emit(report, args: argparse.Namespace) -> int:
 
 def _replay_bundle(args: argparse.Namespace) -> int:
     from .golden import BundleError
-    from .harness.replay import replay_model
+    from .harness.replay import replay
     from .harness.subject import TargetError
     try:
-        report = replay_model(args.target, args.bundle, dtype=args.dtype, factor=args.factor)
+        report = replay(args.target, args.bundle, dtype=args.dtype, factor=args.factor)
     except (TargetError, BundleError, ValueError) as error:
         print(f"refops replay: {error}", file=sys.stderr)
         return 2
@@ -301,9 +310,15 @@ def build_parser() -> argparse.ArgumentParser:
     merge.add_argument("-o", "--output", required=True)
     merge.set_defaults(run=_merge)
 
-    record = commands.add_parser("record", help="record a trusted run of a model as a bundle")
-    record.add_argument("target", help="a factory called with no arguments that returns the model")
-    record.add_argument("--input-shape", action="append", required=True, help="e.g. 2,1,16,16; repeatable")
+    record = commands.add_parser("record", help="record a trusted run of a layer or a model as a bundle")
+    record.add_argument("target", help="a layer factory (with --op) or a factory called with no arguments "
+                                       "that returns the model (with --input-shape)")
+    record.add_argument("--op", help="record cases of this op's configuration space (references: its oracle)")
+    record.add_argument("--cases", type=int, default=20, help="with --op: number of cases (default 20)")
+    record.add_argument("--set", type=_pin, action="append", default=[], metavar="NAME=VALUE",
+                        help="with --op: pin a configuration value, as for check")
+    record.add_argument("--input-shape", action="append", default=[],
+                        help="a model input's shape, e.g. 2,1,16,16; repeatable")
     record.add_argument("-o", "--output", required=True, help="bundle folder (must not exist or be empty)")
     record.add_argument("--dtype", default="float32", choices=["float64", "float32", "float16", "bfloat16"])
     record.add_argument("--seed", type=int, default=0)

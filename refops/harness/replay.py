@@ -1,12 +1,18 @@
-"""Record and replay: regression-test a port against a trusted run when no oracle covers it.
+"""Record and replay: regression-test a port against a trusted run.
 
-``record_model`` runs a whole model (a factory called with no arguments that returns a torch
-module) on the trusted backend twice, in the subject's format and in float64, on the same rounded
-inputs and parameters, and stores inputs, parameters, the cotangent, the float64 outputs and
-gradients, and the error the trusted run showed in its format, as a bundle (:mod:`refops.golden`).
-``replay_model`` runs the new backend on the bundle's values and compares its output and gradients
-with the float64 results under :class:`~refops.numerics.tolerance.Calibrated`: ``factor`` times
-the error the trusted run showed, per tensor.
+Two kinds of bundle (:mod:`refops.golden`):
+
+- a **model** bundle (:func:`record_model`): a whole model (a factory called with no arguments)
+  run on the trusted backend in the subject's format and in float64 on the same rounded inputs and
+  parameters; it stores inputs, parameters, the cotangent, the float64 outputs and gradients, and
+  the error the trusted run showed in its format;
+- a **layer** bundle (:func:`record_layer`): cases drawn from an op's configuration space (as
+  ``refops check`` draws them), the trusted layer run on each, the float64 oracle's output and
+  gradients as references, and per case the error the trusted run showed against them.
+
+``replay_model`` / ``replay_layer`` run the new backend on the bundle's values and compare with
+the references under :class:`~refops.numerics.tolerance.Calibrated`: ``factor`` times the error
+the trusted run showed, per tensor (per case for a layer bundle). :func:`replay` picks the kind.
 """
 from __future__ import annotations
 
@@ -18,8 +24,12 @@ import numpy as np
 from .. import golden
 from ..numerics.compare import compare
 from ..numerics.formats import get_format, round_to
-from ..numerics.tolerance import Calibrated
-from .runner import DTYPES
+from ..numerics.tolerance import Calibrated, RoundingBound
+from .. import ops
+from ..ops._registry import CaseConfig
+from ..ops._space import pinned_value
+from .runner import (DTYPES, Case, WorkerPool, _job, allowed_errors, compare_all, draw_case, new_verdict,
+                     oracle_results, record_fault)
 from .subject import load_factory, model_job, model_parameters, run_subject
 from .verdict import CaseResult, Report
 
@@ -86,3 +96,114 @@ def replay_model(target: str, directory, *, dtype: str | None = None, factor: fl
             case.status = "failed"
     report.cases.append(case)
     return report
+
+
+def _trusted_shares(result: dict, references: dict, allowed: dict) -> dict[str, float]:
+    """Per tensor, the largest share of the rounding bound the trusted run used."""
+    subject = {"output": result["output"], **result["grads"]}
+    shares = {}
+    for tensor, reference in references.items():
+        value = subject.get(tensor)
+        if value is None or value.shape != reference.shape:
+            raise RuntimeError(f"the trusted run gave no usable {tensor}")
+        with np.errstate(divide="ignore", invalid="ignore"):
+            share = np.where(value == reference, 0.0, np.abs(value - reference) / allowed[tensor])
+        if not np.all(np.isfinite(share)):
+            raise RuntimeError(f"the trusted run's {tensor} is not finite where the oracle is")
+        shares[tensor] = float(np.max(share, initial=0.0))
+    return shares
+
+
+def _json_safe(values: dict) -> dict:
+    return {k: list(v) if isinstance(v, tuple) else v for k, v in values.items()}
+
+
+def _tuples(values: dict) -> dict:
+    """JSON lists back to the tuples a layer configuration carries."""
+    return {k: tuple(v) if isinstance(v, list) else v for k, v in values.items()}
+
+
+def record_layer(target: str, op: str, directory, *, cases: int = 20, seed: int = 0, dtype: str = "float32",
+                 pins=None, timeout: float = 60.0) -> Path:
+    """Record the trusted layer ``target`` on ``cases`` cases of ``op`` (pinned by ``pins``).
+
+    The references are the float64 oracle's results; per case and tensor the manifest keeps the
+    share of the rounding bound the trusted run used. Returns the bundle folder."""
+    oracle = ops.get(op)
+    if dtype not in DTYPES:
+        raise ValueError(f"dtype={dtype!r}: expected one of {', '.join(DTYPES)}")
+    pins = {k: pinned_value(v) for k, v in (pins or {}).items()}
+    drawn = [draw_case(oracle, seed, index, dtype, pins) for index in range(cases)]
+    bound = RoundingBound(floor=get_format(dtype).tiny)
+    stored, recorded = {}, []
+    with WorkerPool(target, timeout, 1) as pool:
+        for case in drawn:
+            result = pool.run_one(_job(oracle, case, dtype, "contiguous", "cpu"))
+            verdict = new_verdict(case)
+            if record_fault(verdict, result):
+                raise RuntimeError(f"the layer failed on the trusted backend in case {case.case_id}: "
+                                   f"{verdict.message}")
+            references = oracle_results(oracle, case)
+            allowed, _ = allowed_errors(oracle, case, references, dtype, bound)
+            prefix = f"case.{case.case_id}."
+            stored.update({prefix + k: v for k, v in case.arrays.items() if v is not None})
+            stored[prefix + "cotangent"] = case.cotangent
+            stored.update({prefix + "reference." + t: v for t, v in references.items()})
+            recorded.append({"case_id": case.case_id, "values": case.family,
+                             "layer": _json_safe(case.config.layer), "drawn": _json_safe(case.config.drawn),
+                             "params": _json_safe({k: v for k, v in case.params.items() if k not in case.arrays}),
+                             "absent": [k for k, v in case.arrays.items() if v is None],
+                             "shares": _trusted_shares(result, references, allowed)})
+    manifest = {"config": {"target": target, "op": op, "pins": _json_safe(pins), "cases": recorded},
+                "formats": {"subject": dtype, "reference": "float64 oracle"}, "device": "cpu", "seed": seed}
+    return golden.write_bundle(directory, arrays=stored, manifest=manifest)
+
+
+def _recorded_case(oracle, entry: dict, arrays: dict) -> Case:
+    prefix = f"case.{entry['case_id']}."
+    values = {k[len(prefix):]: np.array(v) for k, v in arrays.items()
+              if k.startswith(prefix) and not k[len(prefix):].startswith("reference.")}
+    cotangent = values.pop("cotangent")
+    values.update({name: None for name in entry["absent"]})
+    params = {**_tuples(entry["params"]), **{k: v for k, v in values.items() if k in oracle.defaults}}
+    config = CaseConfig(layer=_tuples(entry["layer"]), params=params, shapes={}, bounds={},
+                        drawn=_tuples(entry["drawn"]))
+    return Case(entry["case_id"], config, entry["values"], values, params, cotangent)
+
+
+def replay_layer(target: str, directory, *, dtype: str | None = None, factor: float = 4.0,
+                 timeout: float = 60.0) -> Report:
+    """Run the layer ``target`` on every case of a layer bundle and judge it against the
+    references: ``factor`` times the largest share of the rounding bound the trusted run used
+    (over all recorded cases, per tensor), times each case's bound."""
+    bundle = golden.read_bundle(directory)
+    config = bundle.manifest["config"]
+    oracle = ops.get(config["op"])
+    dtype = dtype or bundle.manifest["formats"]["subject"]
+    tiny = get_format(dtype).tiny
+    tensors = {t for entry in config["cases"] for t in entry["shares"]}
+    shares = {t: max(entry["shares"].get(t, 0.0) for entry in config["cases"]) for t in sorted(tensors)}
+    model = Calibrated(shares, factor=factor, floor=tiny, bound=RoundingBound(floor=tiny))
+    report = Report(op=None, target=target, dtype=dtype, seed=bundle.manifest["seed"], model=model.describe(),
+                    against=f"the recorded trusted run of {config['target']} ({config['op']})")
+    with WorkerPool(target, timeout, 1) as pool:
+        for entry in config["cases"]:
+            case = _recorded_case(oracle, entry, bundle.arrays)
+            prefix = f"case.{case.case_id}.reference."
+            references = {k[len(prefix):]: np.asarray(v) for k, v in bundle.arrays.items() if k.startswith(prefix)}
+            verdict = new_verdict(case)
+            verdict.replay = f"refops replay {target} {directory} --dtype {dtype}"
+            result = pool.run_one(_job(oracle, case, dtype, "contiguous", "cpu"))
+            if not record_fault(verdict, result):
+                allowed, applied = allowed_errors(oracle, case, references, dtype, model)
+                compare_all(verdict, result, references, allowed, dtype, model.describe())
+                report.deviations = sorted(set(report.deviations) | set(applied))
+            report.cases.append(verdict)
+    return report
+
+
+def replay(target: str, directory, *, dtype: str | None = None, factor: float = 4.0) -> Report:
+    """Replay a model or a layer bundle, whichever ``directory`` holds."""
+    if "op" in golden.read_bundle(directory).manifest["config"]:
+        return replay_layer(target, directory, dtype=dtype, factor=factor)
+    return replay_model(target, directory, dtype=dtype, factor=factor)

@@ -97,15 +97,19 @@ def draw_case(op, seed: int, index: int, dtype: str, pins: Mapping[str, Any] | N
     return Case(f"{seed}-{index}", config, family, arrays, params, cotangent)
 
 
-def _oracle(op, case: Case, dtype: str, model, use_deviations: bool):
-    """Reference output and gradients, with the allowed error of each, and deviations applied."""
+def oracle_results(op, case: Case) -> dict[str, np.ndarray]:
+    """The oracle's output and gradients for the case, keyed ``output`` and by array name."""
     positional = tuple(case.arrays.get(name) for name in op.arrays)
-    kwargs = {k: v for k, v in case.params.items()}
-    out = op(*positional, **kwargs)
-    grads = op.vjp(case.cotangent, *positional, **kwargs)
-    terms = op.error_terms(case.cotangent, *positional, **kwargs)
+    return {"output": op(*positional, **case.params), **op.vjp(case.cotangent, *positional, **case.params)}
+
+
+def allowed_errors(op, case: Case, references: dict, dtype: str, model, use_deviations: bool = True):
+    """The allowed error of each reference tensor under ``model``, declared deviations applied;
+    returns ``(allowed, descriptions of the deviations applied)``."""
+    positional = tuple(case.arrays.get(name) for name in op.arrays)
+    terms = op.error_terms(case.cotangent, *positional, **case.params)
     fmt = get_format(dtype)
-    references, allowed, applied = {"output": out, **grads}, {}, []
+    allowed, applied = {}, []
     for tensor, reference in references.items():
         term = terms[tensor]
         deviation = _deviations.applicable(op.name, dtype, tensor, use_deviations)
@@ -113,7 +117,7 @@ def _oracle(op, case: Case, dtype: str, model, use_deviations: bool):
             term = dataclasses.replace(term, accumulate=deviation.accumulate)
             applied.append(deviation.describe())
         allowed[tensor] = model.allowed(reference, term, fmt, tensor=tensor)
-    return references, allowed, applied
+    return allowed, applied
 
 
 # Ops whose dim 0 is a batch of independent samples (the output's dim 0 follows the input's).
@@ -162,21 +166,39 @@ def _unsafe_in_process(op, case: Case) -> str:
     return ""
 
 
+def new_verdict(case: Case) -> CaseResult:
+    return CaseResult(case_id=case.case_id, config={**case.config.drawn, **case.config.layer},
+                      values=case.family, status="passed")
+
+
+def record_fault(verdict: CaseResult, result: dict) -> bool:
+    """Give the verdict the status of a case that did not run to the end (skipped, crashed, hung,
+    raised); True when it did not."""
+    if result.get("skip"):
+        verdict.status, verdict.message = "skipped", f"not run in this process: {result['skip']}"
+    elif result.get("fault"):
+        verdict.status, verdict.message = result["fault"], result["error"]
+    elif result.get("error"):
+        verdict.status, verdict.message = "subject-error", result["error"]
+    return verdict.status != "passed"
+
+
 def judge(op, case: Case, result: dict, dtype: str, model, use_deviations: bool = True
           ) -> tuple[CaseResult, list[str]]:
     """Turn the subject's result for a case into a verdict."""
-    verdict = CaseResult(case_id=case.case_id, config={**case.config.drawn, **case.config.layer},
-                         values=case.family, status="passed")
-    if result.get("skip"):
-        verdict.status, verdict.message = "skipped", f"not run in this process: {result['skip']}"
-        return verdict, [result["skip"]]
-    if result.get("fault"):
-        verdict.status, verdict.message = result["fault"], result["error"]
-        return verdict, []
-    if result.get("error"):
-        verdict.status, verdict.message = "subject-error", result["error"]
-        return verdict, []
-    references, allowed, applied = _oracle(op, case, dtype, model, use_deviations)
+    verdict = new_verdict(case)
+    if record_fault(verdict, result):
+        return verdict, [result["skip"]] if result.get("skip") else []
+    references = oracle_results(op, case)
+    allowed, applied = allowed_errors(op, case, references, dtype, model, use_deviations)
+    compare_all(verdict, result, references, allowed, dtype, model.describe())
+    return verdict, applied
+
+
+def compare_all(verdict: CaseResult, result: dict, references: dict, allowed: dict, dtype: str,
+                model: str) -> None:
+    """Compare the subject's output and gradients with the references, add the behaviour
+    findings, and set the verdict's status."""
     verdict.findings.extend(result["findings"])
     if result["output_dtype"] != dtype:
         verdict.findings.append(f"the output has dtype {result['output_dtype']}, expected {dtype}")
@@ -190,14 +212,12 @@ def judge(op, case: Case, result: dict, dtype: str, model, use_deviations: bool 
             verdict.findings.append(f"{'the output' if tensor == 'output' else 'the gradient of ' + tensor} "
                                     f"has shape {value.shape}, expected {reference.shape}")
             continue
-        verdict.comparisons.append(compare(tensor, value, reference, allowed[tensor], dtype,
-                                           model=model.describe()))
+        verdict.comparisons.append(compare(tensor, value, reference, allowed[tensor], dtype, model=model))
     if result.get("alone") is not None:
         verdict.findings.extend(_batch_independence(result["alone"], references["output"],
                                                     allowed["output"]))
     if verdict.findings or not all(c.passed for c in verdict.comparisons):
         verdict.status = "failed"
-    return verdict, applied
 
 
 def _batch_independence(alone: np.ndarray, reference: np.ndarray, allowed: np.ndarray) -> list[str]:
@@ -328,7 +348,7 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
             judged.append((verdict, used))
         return judged
 
-    with _WorkerPool(target if isinstance(target, str) else None, timeout, jobs) as pool:
+    with WorkerPool(target if isinstance(target, str) else None, timeout, jobs) as pool:
         for judged in pool.map(run_chunk, chunks):
             for verdict, used in judged:
                 report.cases.append(verdict)
@@ -342,7 +362,7 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
     return report
 
 
-class _WorkerPool:
+class WorkerPool:
     """``size`` worker processes for a TARGET string (none for a callable run in this process).
     ``map(fn, items)`` calls ``fn(item, worker)`` with a free worker, results in order."""
 
@@ -353,7 +373,7 @@ class _WorkerPool:
         for worker in self.workers:
             self.free.put(worker)
 
-    def __enter__(self) -> "_WorkerPool":
+    def __enter__(self) -> "WorkerPool":
         return self
 
     def __exit__(self, *exc) -> None:

@@ -14,7 +14,7 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-from .runner import _WorkerPool, parse_case_id
+from .runner import WorkerPool, parse_case_id, record_fault
 from .subject import load_factory, model_job, model_parameters, run_subject
 from .verdict import CaseResult, Report
 
@@ -34,15 +34,6 @@ def _shapes(input_shapes) -> list[tuple[int, ...]]:
     return shapes
 
 
-def _fault(verdict: CaseResult, result: dict) -> bool:
-    """Record a crash, hang or exception of the subject; True when there was one."""
-    if result.get("fault"):
-        verdict.status, verdict.message = result["fault"], result["error"]
-    elif result.get("error"):
-        verdict.status, verdict.message = "subject-error", result["error"]
-    return verdict.status != "passed"
-
-
 def _one_case(factory: Callable, run: Callable, shapes, seed: int, index: int) -> CaseResult:
     rng = np.random.default_rng([seed, index])
     verdict = CaseResult(case_id=f"{seed}-{index}", config={"input_shapes": [list(s) for s in shapes]},
@@ -55,11 +46,11 @@ def _one_case(factory: Callable, run: Callable, shapes, seed: int, index: int) -
         verdict.status, verdict.message = "subject-error", f"{type(error).__name__}: {error}"
         return verdict
     probe = run(model_job(arrays, inputs, np.zeros(0), "float64"))  # the output shape
-    if _fault(verdict, probe):
+    if record_fault(verdict, probe):
         return verdict
     cotangent = rng.standard_normal(probe["output"].shape)
     result = run(model_job(arrays, inputs, cotangent, "float64", self_fd=True))
-    if _fault(verdict, result):
+    if record_fault(verdict, result):
         return verdict
     verdict.seconds = probe.get("seconds", 0.0) + result.get("seconds", 0.0)
     verdict.findings.extend(result["findings"])
@@ -83,7 +74,7 @@ def check_self(target: str | Callable, input_shapes: Sequence[Sequence[int]], *,
     report = Report(op=None, target=name, dtype="float64", seed=seed, model=MODEL, against=AGAINST)
     plan = [parse_case_id(c) for c in case_ids] if case_ids else [(seed, i) for i in range(cases)]
     shape_args = "".join(f" --input-shape {','.join(map(str, s))}" for s in shapes)
-    with _WorkerPool(target if isinstance(target, str) else None, timeout, 1) as pool:
+    with WorkerPool(target if isinstance(target, str) else None, timeout, 1) as pool:
         run = pool.run_one if isinstance(target, str) else (lambda job: run_subject(factory, job))
         for case_seed, index in plan:
             verdict = _one_case(factory, run, shapes, case_seed, index)

@@ -180,10 +180,14 @@ class Calibrated:
         Headroom over what was observed (default 4).
     floor : float or None
         Absolute floor; None means :func:`default_floor` of the format.
+    bound : tolerance model or None
+        When given, ``observed`` is in units of this model's bound (the share of it the trusted
+        run used, pooled over cases) and the allowed error is ``factor * observed * bound + floor``:
+        it follows each case's magnitudes and reduction lengths instead of one case's error.
     """
 
     def __init__(self, observed: Mapping[str, Any], *, factor: float = 4.0,
-                 floor: float | None = None):
+                 floor: float | None = None, bound: ToleranceModel | None = None):
         if not isinstance(observed, Mapping) or not observed:
             _checks.fail("observed", observed, "expected a non-empty mapping of tensor name to "
                          "observed error", TypeError)
@@ -193,6 +197,9 @@ class Calibrated:
                 _checks.fail(f"observed[{name!r}]", value, "must be finite and >= 0")
         self.factor = _checks.as_real("factor", factor, positive=True)
         self.floor = None if floor is None else _nonnegative("floor", floor)
+        if bound is not None and not callable(getattr(bound, "allowed", None)):
+            _checks.fail("bound", bound, "expected a tolerance model (with an allowed method)", TypeError)
+        self.bound = bound
 
     def allowed(self, reference: np.ndarray, terms: ErrorTerms | None = None, fmt: Any = None, *,
                 tensor: str | None = None) -> np.ndarray:
@@ -201,10 +208,16 @@ class Calibrated:
             _checks.fail("tensor", tensor, f"no observed error for it; known: "
                          f"{', '.join(self.observed)}")
         observed = _term(f"observed[{tensor!r}]", self.observed[tensor], reference.shape)
+        if self.bound is not None:
+            observed = observed * self.bound.allowed(reference, terms, fmt, tensor=tensor)
         floor = default_floor(get_format(fmt or "float64")) if self.floor is None else self.floor
         return self.factor * observed + floor
 
     def describe(self) -> str:
         floor = "eps*tiny" if self.floor is None else f"{self.floor:g}"
-        return (f"calibrated: {self.factor:g}*observed + {floor}, observed for "
-                f"{', '.join(self.observed)}")
+        if self.bound is None:
+            return (f"calibrated: {self.factor:g}*observed + {floor}, observed for "
+                    f"{', '.join(self.observed)}")
+        shares = ", ".join(f"{k} {float(np.max(v)):.3g}" for k, v in self.observed.items())
+        return (f"calibrated: {self.factor:g}*observed*bound + {floor}, observed = the share of the "
+                f"bound the trusted run used ({shares}); bound: {self.bound.describe()}")

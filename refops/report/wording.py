@@ -1,7 +1,8 @@
 """Sentences every report carries, worded once."""
 
-CAUTION = ("A passing check is evidence, not proof: refops compares against its own float64 oracles "
-           "under a rounding model, on the cases it drew. Where a wrong result can hurt someone "
+CAUTION = ("A passing check is evidence, not proof: refops compares against float64 references (its "
+           "own oracles, a recorded trusted run, or finite differences) under an error model, on the "
+           "cases it drew. Where a wrong result can hurt someone "
            "(medical, safety-critical or financial pipelines), your own validation and your field's "
            "standards govern.")
 

@@ -206,3 +206,7 @@ def abort(**layer):
 
 def relu(**layer):
     return nn.ReLU()
+
+
+def conv2d(**layer):
+    return nn.Conv2d(**layer)

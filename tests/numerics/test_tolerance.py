@@ -210,6 +210,22 @@ def test_fixed_and_calibrated():
         assert "\n" not in m.describe() and m.describe()
 
 
+def test_calibrated_on_a_bound_scales_each_cases_bound_by_the_observed_share():
+    # Worked example: float32, |ref| = 2, M = 8, k = 16, wide sums: the rounding bound is
+    # 2^-24 * 2 + 5 * 4 * 2^-24 * 8 (Higham & Mary 2019 form, as in the README); a trusted run that
+    # used 0.3 of it, with headroom 4, allows 1.2 times the bound (plus the floor).
+    bound = RoundingBound(floor=0.0)
+    terms = ErrorTerms(magnitude=8.0, length=16.0)
+    expected_bound = 2.0 ** -24 * 2 + 5 * 4 * 2.0 ** -24 * 8
+    assert bound.allowed(np.array([2.0]), terms, "float32")[0] == pytest.approx(expected_bound, rel=1e-12)
+    model = Calibrated({"output": 0.3}, factor=4.0, floor=1e-30, bound=bound)
+    assert model.allowed(np.array([2.0]), terms, "float32", tensor="output")[0] == \
+        pytest.approx(1.2 * expected_bound + 1e-30, rel=1e-12)
+    assert "share of the bound" in model.describe() and "output 0.3" in model.describe()
+    with pytest.raises(TypeError, match="bound="):
+        Calibrated({"output": 0.3}, bound="rounding")
+
+
 def test_comparison_counts_and_nonfinite_parity():
     ref = np.array([1.0, 2.0, np.inf, -np.inf, 5.0, np.nan, 7.0, 0.0])
     sub = np.array([1.0, 2.5, np.inf, np.inf, np.inf, np.nan, np.nan, 0.0])
