@@ -10,8 +10,8 @@ processes (a TARGET string) with jobs=1 and jobs=2. Cases are drawn from the who
 every figure is the median over the repeats.
 
 A case's time is split by wrapping harness functions here (refops itself is unchanged):
-``oracle`` is the harness's oracle step (``runner._oracle``, or its halves ``oracle_results`` and
-``allowed_errors``: forward + vjp + error terms + allowed bound), ``subject`` the ``seconds`` that
+``oracle`` is the harness's oracle step (``runner.oracle_results`` and ``runner.allowed_errors``:
+forward + vjp + error terms + allowed bound), ``subject`` the ``seconds`` that
 ``run_subject`` reports per case, and ``overhead`` the rest of the wall time (drawing and
 rounding, ``compare``, the rest of judging, worker messaging and pickling). The fixed costs of a
 worker (its start, its first case, which pays torch's first calls, and its stop) are measured
@@ -42,8 +42,7 @@ def torch_conv2d(**layer) -> torch.nn.Module:
     return torch.nn.Conv2d(**layer)
 
 
-# The oracle's part of judging: one function, or (after a split of the harness) its two halves.
-ORACLE = [name for name in ("_oracle", "oracle_results", "allowed_errors") if hasattr(runner, name)]
+ORACLE = ("oracle_results", "allowed_errors")  # the oracle's part of judging
 TORCH_TARGET = f"{Path(__file__).resolve()}:torch_conv2d"
 # label, target, jobs
 MODES = [("nn.Conv2d  in-process", torch_conv2d, 1),
