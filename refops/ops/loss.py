@@ -14,7 +14,7 @@ from scipy import special
 
 from . import _checks
 from ._registry import CaseConfig, ErrorTerms, register
-from .softmax import shifted_logits
+from .softmax import log_softmax, shifted_logits
 
 __all__ = ["mse_loss", "cross_entropy", "binary_cross_entropy_with_logits"]
 
@@ -47,17 +47,20 @@ class _Reduction:
         scale = 1.0 / self.count if self.kind == "mean" else 1.0
         return np.broadcast_to(g * scale, self.shape)
 
-    def output_terms(self, magnitude: np.ndarray, length: float, rounded=0.0, value=0.0) -> ErrorTerms:
+    def output_terms(self, magnitude: np.ndarray, length: float, rounded=0.0, value=0.0,
+                     reduced=0.0) -> ErrorTerms:
         """Per-element terms of length ``length``, plus the reduction's own sum of ``count`` terms.
 
         ``rounded`` is each element's sensitivity to intermediates rounded to the I/O format; a
         reduction also sums the per-element losses after rounding them to that format
         (``value`` = their sizes), as frameworks that reduce a loss tensor of the I/O dtype do.
+        ``reduced`` is the sensitivity to values rounded while or after reducing (output-shaped).
         """
         if self.kind == "none":
-            return ErrorTerms(magnitude, length, rounded=rounded)
+            return ErrorTerms(magnitude, length, rounded=rounded + reduced)
         per_element = np.broadcast_to(rounded + value, self.shape)
-        return ErrorTerms(self.apply(magnitude), length + self.count, rounded=self.apply(per_element))
+        return ErrorTerms(self.apply(magnitude), length + self.count,
+                          rounded=self.apply(per_element) + reduced)
 
 
 def _reduction_output_shape(arrays: dict, params: dict) -> tuple[int, ...]:
@@ -140,10 +143,21 @@ def _bce_error_terms(g, input, target, *, reduction):
     spread = np.abs(r.spread(g))
     s, s_neg = special.expit(input), special.expit(-input)
     per_element = np.maximum(input, 0) + np.abs(input * target) + np.log1p(np.exp(-np.abs(input)))
-    return {"output": r.output_terms(per_element, 3),
+    # torch's half kernels compute ((1 - t) * x) - logsigmoid(x), each operation rounded to the
+    # I/O format: 1 - t and the product carry |(1 - t) x| each, logsigmoid its size; the losses
+    # are rounded before reducing. The backward (sigmoid(x) - t) * g, then / count for a mean,
+    # rounds sigmoid (s) and the difference, and for a mean the product too; the target's
+    # -x * g rounds the product before a mean's division.
+    weighted = np.abs((1.0 - target) * input)
+    loss = np.abs(np.maximum(input, 0) - input * target + np.log1p(np.exp(-np.abs(input))))
+    steps = 2.0 if reduction == "mean" else 1.0
+    rounded = 2.0 * weighted + np.abs(special.log_expit(input))
+    return {"output": r.output_terms(per_element, 3, rounded=rounded, value=loss),
             # expit carries exp's relative error |x| u: |x| s (1 - s).
-            "input": ErrorTerms(spread * (s + np.abs(target) + np.abs(input) * s * s_neg), 3),
-            "target": ErrorTerms(spread * np.abs(input), 1)}
+            "input": ErrorTerms(spread * (s + np.abs(target) + np.abs(input) * s * s_neg), 3,
+                                rounded=spread * (s + steps * np.abs(s - target))),
+            "target": ErrorTerms(spread * np.abs(input), 1,
+                                 rounded=(steps - 1.0) * spread * np.abs(input))}
 
 
 def _bce_space(draw) -> CaseConfig:
@@ -225,12 +239,53 @@ def _cross_entropy_error_terms(g, input, target, *, reduction, label_smoothing):
     p = np.exp(z - log_sum)
     spread = np.sum(p * np.abs(z), axis=axis, keepdims=True)
     y = _smoothed_targets(input, target, label_smoothing)
+    hot = _smoothed_targets(input, target, 0.0)
     # log-sum-exp: the shift |m|, log of a sum carrying 1 + sum p|z|; the target term sum y|x|.
     per_position = (np.abs(np.max(input, axis=axis, keepdims=True)) + np.abs(log_sum) + 1 + spread
                     + np.sum(y * np.abs(input), axis=axis, keepdims=True))
     cot = np.abs(np.expand_dims(r.spread(g), axis))
-    return {"output": r.output_terms(np.squeeze(per_position, axis), classes),
-            "input": ErrorTerms(cot * (p * (1 + np.abs(z) + spread) + y), classes)}
+    # torch composes its log_softmax (whose own rounded steps its error terms give) with
+    # operations in the I/O format, each rounded: the `rounded` terms below.
+    log_p = log_softmax.error_terms(-y * cot, input, dim=axis)
+    position_steps, reduced_steps = _cross_entropy_forward_steps(
+        r, z - log_sum, y, hot, log_p["output"].rounded, label_smoothing, axis)
+    backward_steps = _cross_entropy_backward_steps(r, p, y, hot, cot, label_smoothing, axis)
+    return {"output": r.output_terms(np.squeeze(per_position, axis), classes,
+                                     rounded=position_steps, reduced=reduced_steps),
+            "input": ErrorTerms(cot * (p * (1 + np.abs(z) + spread) + y), classes,
+                                rounded=backward_steps + log_p["input"].rounded)}
+
+
+def _cross_entropy_forward_steps(r: _Reduction, log_p, y, hot, log_p_rounded, smoothing, axis):
+    """The forward's rounded values, per position and after reducing (torch): ``nll =
+    reduce(-log_p[t])`` (a sum in the I/O format, then ``/ count``); for ``smoothing > 0`` also
+    ``ret = reduce(-fl(sum_c log_p))`` and ``(1 - eps) nll + ret (eps / C)``, each operation
+    rounded. Every rounded value counts its size but the last, the bound's ``u_out |ref|``."""
+    mean, reduced, smoothed = r.kind == "mean", r.kind != "none", smoothing > 0
+    picked = np.sum(-hot * log_p, axis=axis)
+    summed = np.abs(np.sum(log_p, axis=axis))
+    # Each log_p carries its own rounding; the sum over the classes is rounded.
+    per_position = (np.sum(y * (np.abs(log_p) + log_p_rounded), axis=axis)
+                    + smoothed * smoothing / log_p.shape[axis] * summed)
+    # The nll sum of non-negative terms in the I/O format rounds each partial sum after the
+    # first term (recursive summation, Higham 2002 eq. 4.4; the partial sums of torch's cascade
+    # of blocks of 16 are no larger).
+    partials = np.cumsum(picked.ravel())
+    partials[:1] = 0.0
+    nll = r.apply(picked)
+    after = (1 - smoothing) * (reduced * r.apply(partials.reshape(picked.shape))
+                               + nll * (mean + smoothed))
+    after = after + smoothed * smoothing / log_p.shape[axis] * r.apply(summed) * (reduced + mean + 1)
+    return per_position, after - (0.0 if smoothed else nll)
+
+
+def _cross_entropy_backward_steps(r: _Reduction, p, y, hot, cot, smoothing, axis):
+    """The backward's I/O-format steps (torch): the cotangent scaled by ``1 - eps`` and by
+    ``eps / C``, each then divided by the count for a mean, the two added at the target class;
+    errors ``d`` in that cotangent of log_softmax reach the gradient as ``d + p sum d``."""
+    smoothed = smoothing > 0
+    d = cot * y * (smoothed + (r.kind == "mean") + smoothed * hot)
+    return d + p * np.sum(d, axis=axis, keepdims=True)
 
 
 def _cross_entropy_space(draw) -> CaseConfig:

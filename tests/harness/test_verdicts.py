@@ -17,8 +17,6 @@ SAFE_IN_PROCESS = sorted(set(FACTORIES) - {"max_pool2d"})
 # test below proves they still fail, so fixing one forces moving it into the passing set.
 OPEN_FALSE_ALARMS = {
     ("batch_norm", "bfloat16"), ("batch_norm", "float16"),
-    ("binary_cross_entropy_with_logits", "bfloat16"), ("binary_cross_entropy_with_logits", "float16"),
-    ("cross_entropy", "bfloat16"), ("cross_entropy", "float16"),
     ("group_norm", "bfloat16"), ("group_norm", "float16"),
     ("layer_norm", "bfloat16"), ("layer_norm", "float16"),
 }
