@@ -165,6 +165,17 @@ def round_to(x: np.ndarray, fmt: Any) -> np.ndarray:
     x = _as_float64("x", x)
     if fmt.name == "float64":
         return x.copy()
+    if fmt.name in _NATIVE:  # numpy's cast from float64 rounds once, to nearest even, overflow to inf
+        with np.errstate(over="ignore"):
+            return x.astype(_NATIVE[fmt.name]).astype(np.float64)
+    return _round_significand(x, fmt)
+
+
+_NATIVE = {"float32": np.float32, "float16": np.float16}
+
+
+def _round_significand(x: np.ndarray, fmt: Format) -> np.ndarray:
+    """:func:`round_to` on the integer significand (every format, and the reference of the cast)."""
     bits = np.ascontiguousarray(x).view(np.uint64)
     biased = ((bits >> np.uint64(52)) & np.uint64(0x7FF)).astype(np.int64)
     significand = (bits & _FRACTION_MASK) | _IMPLICIT_BIT

@@ -511,8 +511,9 @@ def _conv_space(draw, *, rank: int) -> CaseConfig:
     stride = _draw_tuple(draw, "stride", (1, 2, 3), rank)
     dilation = _draw_tuple(draw, "dilation", (1, 2, 3), rank)
     padding_mode = draw.choice("padding_mode", list(_window.PADDING_MODES))
+    # With stride 1, "same" is the edge value: an even kernel or odd dilation pads unevenly.
     same = ["same"] if set(stride) == {1} else []
-    padding = draw.choice("padding", _options((0, 1, 2), rank) + ["valid"] + same)
+    padding = draw.choice("padding", same + _options((0, 1, 2), rank) + ["valid"])
     pairs = _window.padding_pairs(padding, rank, kernel=kernel, dilation=dilation, stride=stride)
     low = [max(1, d * (k - 1) + 1 - lo - hi, max(lo, hi) + (padding_mode == "reflect"))
            for k, d, (lo, hi) in zip(kernel, dilation, pairs)]

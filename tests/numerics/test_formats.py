@@ -99,17 +99,26 @@ def test_e5m2_overflows_to_infinity():
 
 
 def test_float16_from_float64_rounds_once():
-    # Reference: numpy's float64 -> float16 conversion rounds directly (no float32 step).
+    # Reference: numpy's float64 -> float16 conversion rounds directly (no float32 step). round_to
+    # uses that cast for float16; the significand rounding it uses for bfloat16 and the 8-bit
+    # formats must agree with it (and with the float32 cast) on midpoints and near-midpoints.
+    from refops.numerics.formats import _round_significand
     rng = np.random.default_rng(0)
     values = all_values("float16")
     finite = np.unique(values[np.isfinite(values)])
     mid = (finite[:-1] + finite[1:]) / 2
     offsets = mid * 2.0 ** -30                       # below float32 resolution at the midpoint
-    probes = np.concatenate([mid, mid + offsets, mid - offsets,
+    probes = np.concatenate([mid, mid + offsets, mid - offsets, [65520.0, -65520.0, 65519.99],
                              rng.standard_normal(20000) * 10.0 ** rng.integers(-9, 6, 20000)])
     with np.errstate(over="ignore"):
         expected = probes.astype(np.float16).astype(np.float64)
     assert np.array_equal(round_to(probes, "float16"), expected)
+    assert np.array_equal(_round_significand(probes, get_format("float16")), expected)
+    wide = np.concatenate([probes, rng.standard_normal(20000) * 10.0 ** rng.integers(-45, 38, 20000)])
+    with np.errstate(over="ignore"):
+        expected32 = wide.astype(np.float32).astype(np.float64)
+    assert np.array_equal(_round_significand(wide, get_format("float32")), expected32)
+    assert np.array_equal(round_to(wide, "float32"), expected32)
 
 
 def test_bfloat16_from_float64_rounds_once():
