@@ -109,7 +109,7 @@ class Timers:
             results = run(process, jobs)
             if id(process) in self.fresh and results:  # the first case pays torch's first calls
                 began, ended = self.fresh.pop(id(process))
-                first = results[0].get("seconds", 0.0)
+                first = results[0].get("seconds", 0.0) if isinstance(results[0], dict) else 0.0  # judges: tuples
                 self.seconds["first"] += first
                 self.fixed.append((began, ended + first))
             return results

@@ -333,17 +333,23 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
     start = time.perf_counter()
     applied: set[str] = set()
 
-    def run_chunk(chunk: list[Case], worker) -> list[tuple[CaseResult, list[str]]]:
+    def run_chunk(chunk: list[Case], lane: tuple) -> list[tuple[CaseResult, list[str]]]:
         if budget is not None and time.perf_counter() - start > budget:
             return []
+        worker, judge_worker = lane
         jobs_ = [_job(oracle, case, dtype, layout, device) for case in chunk]
         results = worker.run_many(jobs_) if worker else [_run_here(oracle, target, case, job)
                                                          for case, job in zip(chunk, jobs_)]
+        began = time.perf_counter()
+        requests = [{"op": op, "case": case, "result": result, "dtype": dtype, "model": model,
+                     "use_deviations": use_deviations} for case, result in zip(chunk, results)]
+        replies = judge_worker.run_many(requests) if judge_worker else [{"fault": "here"}] * len(chunk)
         judged = []
-        for case, result in zip(chunk, results):
-            began = time.perf_counter()
-            verdict, used = judge(oracle, case, result, dtype, model, use_deviations)
-            verdict.seconds = result.get("seconds", 0.0) + time.perf_counter() - began
+        for case, result, reply in zip(chunk, results, replies):
+            if isinstance(reply, dict):  # judged here: one process, or the judge process failed
+                reply = judge(oracle, case, result, dtype, model, use_deviations)
+            verdict, used = reply
+            verdict.seconds = result.get("seconds", 0.0) + (time.perf_counter() - began) / len(chunk)
             verdict.replay = _replay(name, op, dtype, pins, case.case_id, layout)
             judged.append((verdict, used))
         return judged
@@ -363,38 +369,42 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
 
 
 class WorkerPool:
-    """``size`` worker processes for a TARGET string (none for a callable run in this process).
-    ``map(fn, items)`` calls ``fn(item, worker)`` with a free worker, results in order."""
+    """Lanes of worker processes for a TARGET string: ``size`` lanes of a subject worker, each
+    with a judge worker when there is more than one lane (one lane judges in this process; a
+    callable target runs in this process, with no workers). ``map(fn, items)`` calls
+    ``fn(item, (worker, judge))`` with a free lane, results in order."""
 
     def __init__(self, target: str | None, timeout: float, size: int):
-        from .worker import Worker
+        from .worker import JUDGE, Worker
         self.free: queue.Queue = queue.Queue()
-        self.workers = [Worker(target, timeout) for _ in range(size)] if target else []
-        for worker in self.workers:
-            self.free.put(worker)
+        self.lanes = [(Worker(target, timeout), Worker(JUDGE, timeout) if size > 1 else None)
+                      for _ in range(size)] if target else []
+        for lane in self.lanes or [(None, None)]:
+            self.free.put(lane)
 
     def __enter__(self) -> "WorkerPool":
         return self
 
     def __exit__(self, *exc) -> None:
-        for worker in self.workers:
-            worker.close()
+        for lane in self.lanes:
+            for worker in lane:
+                if worker is not None:
+                    worker.close()
 
-    def _with_worker(self, fn: Callable, item):
-        if not self.workers:
-            return fn(item, None)
-        worker = self.free.get()
+    def _with_lane(self, fn: Callable, item):
+        lane = self.free.get()
         try:
-            return fn(item, worker)
+            return fn(item, lane)
         finally:
-            self.free.put(worker)
+            self.free.put(lane)
 
     def map(self, fn: Callable, items: list):
-        if len(self.workers) <= 1:
-            yield from (self._with_worker(fn, item) for item in items)
+        if len(self.lanes) <= 1:
+            yield from (self._with_lane(fn, item) for item in items)
             return
-        with concurrent.futures.ThreadPoolExecutor(len(self.workers)) as threads:
-            yield from threads.map(lambda item: self._with_worker(fn, item), items)
+        with concurrent.futures.ThreadPoolExecutor(len(self.lanes)) as threads:
+            yield from threads.map(lambda item: self._with_lane(fn, item), items)
 
     def run_one(self, job: dict) -> dict:
-        return self._with_worker(lambda item, worker: worker.run(item), job)
+        """``job`` on a subject worker."""
+        return self._with_lane(lambda item, lane: lane[0].run(item), job)

@@ -42,15 +42,35 @@ def _receive(stream: BinaryIO) -> Any:
     return pickle.loads(_read_exactly(stream, size))
 
 
+JUDGE = "--judge"
+"""The TARGET of a worker that runs no subject but judges cases (the oracle and the comparisons),
+so that a sweep over several cores is not held back by one process judging for all."""
+
+
+def _judge(job: dict) -> tuple:
+    from .. import ops
+    from .runner import judge
+    return judge(ops.get(job["op"]), job["case"], job["result"], job["dtype"], job["model"],
+                 job["use_deviations"])
+
+
+def _handler(target: str):
+    """The function that serves one job of this worker."""
+    if target == JUDGE:
+        return _judge
+    from .subject import load_factory, run_subject
+    import torch
+    torch.set_num_threads(1)
+    factory = load_factory(target)
+    return lambda job: run_subject(factory, job)
+
+
 def _serve(target: str) -> None:
     replies = os.fdopen(os.dup(1), "wb")
     os.dup2(2, 1)  # the subject's prints must not reach the protocol stream
     requests = sys.stdin.buffer
-    from .subject import load_factory, run_subject
-    import torch
-    torch.set_num_threads(1)
     try:
-        factory = load_factory(target)
+        handle = _handler(target)
     except Exception as error:
         _send(replies, {"ready": False, "error": str(error)})
         return
@@ -61,7 +81,7 @@ def _serve(target: str) -> None:
         except EOFError:
             return
         for job in jobs:
-            _send(replies, run_subject(factory, job))
+            _send(replies, handle(job))
 
 
 class Worker:
