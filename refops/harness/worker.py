@@ -2,9 +2,11 @@
 
 The worker (``python -m refops.harness.worker TARGET``) loads the TARGET once and then serves one
 batch of cases per message (one reply per case, sent as soon as it is done): length-prefixed
-pickles over its stdin and a private copy of its stdout (the subject's own prints go to stderr). It is a fresh interpreter, so the caller's main script is
-never re-run. If the worker dies (a segfault, an abort, heap corruption) or a case runs past the
-time limit, the parent reports that case and starts a fresh worker for the next one.
+pickles over its stdin and a private copy of its stdout (the subject's own prints go to stderr).
+It is a fresh interpreter, so the caller's main script is never re-run. If the worker dies (a
+segfault, an abort, heap corruption) or a case runs past the time limit, the parent reports that
+case and starts a fresh worker for the next one. With TARGET :data:`JUDGE` the worker runs no
+subject: it judges cases (oracle and comparisons) for a sweep over several lanes.
 """
 from __future__ import annotations
 
