@@ -105,15 +105,25 @@ def _merge(args: argparse.Namespace) -> int:
     return 0 if merged["passed"] else 1
 
 
-def _input_shapes(args: argparse.Namespace, command: str) -> list[tuple[int, ...]] | None:
-    """``--input-shape 2,1,16,16`` (repeatable) as tuples; None (after a message) when malformed."""
-    try:
-        shapes = [tuple(int(n) for n in text.split(",")) for text in args.input_shape]
-    except ValueError:
-        shapes = []
-    if not shapes or any(not s or min(s) < 1 for s in shapes):
+def _input_shapes(args: argparse.Namespace, command: str) -> dict[str, tuple[int, ...]] | None:
+    """``--input-shape [NAME=]2,1,16,16`` (repeatable) by name (``input0``, ... when unnamed);
+    None (after a message) when malformed."""
+    shapes = {}
+    for i, text in enumerate(args.input_shape):
+        name, _, sizes = text.rpartition("=")
+        try:
+            shape = tuple(int(n) for n in sizes.split(","))
+        except ValueError:
+            shape = ()
+        name = name or f"input{i}"
+        if not shape or min(shape) < 1 or name in shapes:
+            shapes = {}
+            break
+        shapes[name] = shape
+    if not shapes:
         print(f"refops {command}: --input-shape {args.input_shape}: expected positive comma-separated sizes, "
-              f"e.g. --input-shape 2,1,16,16", file=sys.stderr)
+              f"optionally named and each name once, e.g. --input-shape 2,1,16,16 or --input-shape "
+              f"image=2,1,16,16", file=sys.stderr)
         return None
     return shapes
 
@@ -281,7 +291,8 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("--op", help="the oracle to compare with (refops ops lists them); without it, "
                                     "--input-shape checks the backward against the subject's own forward")
     check.add_argument("--input-shape", action="append", default=[], metavar="SIZES",
-                       help="without --op: an input's shape, e.g. 2,3,8,8 (repeatable, one per input)")
+                       help="without --op: an input's shape, e.g. 2,3,8,8 or image=2,3,8,8 (repeatable, one "
+                            "per input, in call order)")
     check.add_argument("--cases", type=int, help="number of drawn cases (default 50; 10 without --op)")
     check.add_argument("--seed", type=int, default=0)
     check.add_argument("--dtype", choices=["float64", "float32", "float16", "bfloat16"],
@@ -318,7 +329,8 @@ def build_parser() -> argparse.ArgumentParser:
     record.add_argument("--set", type=_pin, action="append", default=[], metavar="NAME=VALUE",
                         help="with --op: pin a configuration value, as for check")
     record.add_argument("--input-shape", action="append", default=[],
-                        help="a model input's shape, e.g. 2,1,16,16; repeatable")
+                        help="a model input's shape, e.g. 2,1,16,16 or tiles=2,1,16,16 (repeatable, "
+                             "in call order; the name labels its arrays)")
     record.add_argument("-o", "--output", required=True, help="bundle folder (must not exist or be empty)")
     record.add_argument("--dtype", default="float32", choices=["float64", "float32", "float16", "bfloat16"])
     record.add_argument("--seed", type=int, default=0)

@@ -17,7 +17,6 @@ the trusted run showed, per tensor (per case for a layer bundle). :func:`replay`
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Sequence
 
 import numpy as np
 
@@ -30,7 +29,7 @@ from ..ops._registry import CaseConfig
 from ..ops._space import pinned_value
 from .runner import (DTYPES, Case, WorkerPool, _job, allowed_errors, compare_all, draw_case, new_verdict,
                      oracle_results, record_fault)
-from .subject import load_factory, model_job, model_parameters, run_subject
+from .subject import load_factory, model_job, model_parameters, named_shapes, run_subject
 from .verdict import CaseResult, Report
 
 
@@ -41,23 +40,24 @@ def _run(factory, arrays, inputs, cotangent, dtype) -> dict:
     return {"output": result["output"], **{f"grad.{k}": v for k, v in result["grads"].items() if v is not None}}
 
 
-def record_model(target: str, input_shapes: Sequence[tuple[int, ...]], directory, *, dtype: str = "float32",
-                 seed: int = 0) -> Path:
-    """Record the trusted run of ``target`` on inputs of ``input_shapes``; returns the bundle folder."""
+def record_model(target: str, input_shapes, directory, *, dtype: str = "float32", seed: int = 0) -> Path:
+    """Record the trusted run of ``target`` on inputs of ``input_shapes`` (shapes, or
+    ``{name: shape}``: the bundle's array names); returns the bundle folder."""
     if dtype not in DTYPES:
         raise ValueError(f"dtype={dtype!r}: expected one of {', '.join(DTYPES)}")
     factory = load_factory(target)
     rng = np.random.default_rng(seed)
-    inputs = [f"input{i}" for i in range(len(input_shapes))]
-    arrays = {name: round_to(rng.standard_normal(shape), dtype) for name, shape in zip(inputs, input_shapes)}
-    arrays.update({name: round_to(value, dtype) for name, value in model_parameters(factory, seed).items()})
+    shapes = named_shapes(input_shapes)
+    inputs = list(shapes)
+    arrays = {name: round_to(rng.standard_normal(shape), dtype) for name, shape in shapes.items()}
+    arrays.update({name: round_to(value, dtype) for name, value in model_parameters(factory, seed, inputs).items()})
     probe = _run(factory, arrays, inputs, np.zeros(0), "float64")  # output shape for the cotangent
     cotangent = round_to(rng.standard_normal(probe["output"].shape), dtype)
     reference = _run(factory, arrays, inputs, cotangent, "float64")
     trusted = _run(factory, arrays, inputs, cotangent, dtype)
     errors = {k: float(np.max(np.abs(trusted[k] - v), initial=0.0)) for k, v in reference.items()}
     stored = {**arrays, "cotangent": cotangent, **{f"reference.{k}": v for k, v in reference.items()}}
-    manifest = {"config": {"target": target, "inputs": inputs, "input_shapes": [list(s) for s in input_shapes]},
+    manifest = {"config": {"target": target, "inputs": inputs, "input_shapes": [list(s) for s in shapes.values()]},
                 "formats": {"subject": dtype, "reference": "float64"}, "device": "cpu", "seed": seed,
                 "errors": errors}
     return golden.write_bundle(directory, arrays=stored, manifest=manifest)

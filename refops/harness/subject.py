@@ -11,11 +11,12 @@ from __future__ import annotations
 import importlib
 import importlib.util
 import os
+import re
 import sys
 import time
 import traceback
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Mapping
 
 import numpy as np
 
@@ -101,6 +102,36 @@ def _forward_backward(subject, inputs: dict, params: dict, cotangent, as_module:
     return output, grads
 
 
+_INPUT_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]{0,63}")
+
+
+def named_shapes(input_shapes) -> dict[str, tuple[int, ...]]:
+    """Input shapes by name, from ``{name: shape}`` or a sequence of shapes (named ``input0``,
+    ``input1``, ...). The inputs are passed to the subject in this order."""
+    if isinstance(input_shapes, Mapping):
+        items = list(input_shapes.items())
+    else:
+        try:
+            items = [(f"input{i}", shape) for i, shape in enumerate(input_shapes)]
+        except TypeError:
+            items = []
+    shapes = {}
+    for name, shape in items:
+        try:
+            shape = tuple(shape)
+        except TypeError:
+            shape = ()
+        if not (isinstance(name, str) and _INPUT_NAME.fullmatch(name)) or not shape or \
+                not all(isinstance(n, int) and not isinstance(n, bool) and n > 0 for n in shape):
+            items = []
+            break
+        shapes[name] = shape
+    if not items:
+        raise ValueError(f"input_shapes={input_shapes!r}: expected one or more shapes of positive sizes, "
+                         f"e.g. [(2, 3, 8, 8)] or {{'image': (2, 3, 8, 8)}} (names are identifiers)")
+    return shapes
+
+
 def model_job(arrays: dict, inputs: list[str], cotangent: np.ndarray, dtype: str, **checks) -> dict:
     """The job for a layer built by a factory called with no arguments (no op: a whole model, or an
     operator without an oracle); ``arrays`` holds the inputs and the parameters by name."""
@@ -108,15 +139,20 @@ def model_job(arrays: dict, inputs: list[str], cotangent: np.ndarray, dtype: str
             "layout": "contiguous", "device": "cpu", "cotangent": cotangent, **checks}
 
 
-def model_parameters(factory: Callable, seed: int) -> dict[str, np.ndarray]:
+def model_parameters(factory: Callable, seed: int, inputs=()) -> dict[str, np.ndarray]:
     """The parameters of ``factory()``, built with torch's generator seeded by ``seed``, as
-    float64 arrays by name (none for a subject that is not a module)."""
+    float64 arrays by name (none for a subject that is not a module); no input may share a name."""
     torch = _torch()
     torch.manual_seed(seed)
     subject = factory()
     if not isinstance(subject, torch.nn.Module):
         return {}
-    return {name: p.detach().to(torch.float64).numpy().copy() for name, p in subject.named_parameters()}
+    params = {name: p.detach().to(torch.float64).numpy().copy() for name, p in subject.named_parameters()}
+    clash = sorted(set(inputs) & (set(params) | {"cotangent"}))
+    if clash:
+        raise ValueError(f"input_shapes: the input name {clash[0]!r} is taken by the model's parameters "
+                         f"(or the cotangent); name the input otherwise")
+    return params
 
 
 def run_subject(factory: Callable, job: dict) -> dict:

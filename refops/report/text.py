@@ -5,7 +5,7 @@ from .wording import CAUTION, config_text, failing_comparisons
 
 
 def _comparison_lines(c) -> list[str]:
-    label = "output" if c.tensor == "output" else f"grad of {c.tensor}"
+    label = "output" if c.tensor == "output" else f"grad of {c.tensor.removeprefix('grad.')}"
     lines = [f"    {label}: {c.violations} of {max(1, _size(c.shape))} elements over the bound "
              f"(share used: max {c.share_max:.3g}, p99 {c.share_p99:.3g}; max abs {c.max_abs:.3g}, "
              f"max rel {c.max_rel:.3g}, max {c.max_ulps:.3g} ulp)"]

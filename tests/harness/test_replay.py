@@ -21,6 +21,13 @@ def test_identical_backend_passes_and_the_slipped_port_fails(tmp_path):
     assert "grad.input0" in failing and "output" not in failing  # the slip is in the backward only
 
 
+def test_named_model_inputs_name_the_bundle_arrays(tmp_path):
+    bundle = record_model(MODEL, {"tiles": (1, 1, 8, 8)}, tmp_path / "b", dtype="float32")
+    assert (bundle / "tiles.npy").exists() and not (bundle / "input0.npy").exists()
+    slipped = replay_model("refops.examples.denoiser:denoiser_slipped", bundle)
+    assert "grad.tiles" in {c.tensor for c in slipped.cases[0].comparisons if not c.passed}
+
+
 def test_replay_refuses_a_tampered_bundle(tmp_path):
     bundle = record_model(MODEL, [(1, 1, 8, 8)], tmp_path / "b", dtype="float32")
     target = bundle / "input0.npy"

@@ -71,3 +71,16 @@ def test_a_case_replays_by_its_id():
 def test_bad_input_shapes_are_refused(shapes):
     with pytest.raises(ValueError, match="input_shapes="):
         check_self(f"{HERE}:gated_unit", shapes)
+
+
+def test_named_inputs_label_the_findings_and_the_replay():
+    report = check_self(f"{HERE}:squared_distance_slipped", {"anchor": (3, 4), "sample": (3, 4)}, cases=1)
+    assert any(" for sample:" in f for f in report.cases[0].findings)
+    assert report.cases[0].replay.endswith("--input-shape anchor=3,4 --input-shape sample=3,4 --case 0-0")
+
+
+def test_input_names_must_be_identifiers_and_free():
+    with pytest.raises(ValueError, match="names are identifiers"):
+        check_self(f"{HERE}:gated_unit", {"a.b": (2, 3)})
+    with pytest.raises(ValueError, match="taken by the model's parameters"):  # GatedUnit has a and b
+        check_self(f"{HERE}:gated_unit", {"a": (2, 3, 4)})
