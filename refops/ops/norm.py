@@ -3,10 +3,12 @@
 All three standardise over a set of axes, ``xhat = (x - mean) / sqrt(var + eps)`` with the biased
 (population) variance computed in two passes, then apply a per-channel (or per-feature) affine
 map. :class:`_Standardised` holds the shared forward, its vjp and its error terms; each op only
-says which axes it reduces over and how its weight broadcasts.
+says which axes it reduces over and how its weight broadcasts. The error terms' ``rounded`` parts
+model statistics saved in the I/O format, as torch's half-format CPU kernels save them.
 """
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -16,6 +18,11 @@ from ._registry import CaseConfig, ErrorTerms, register
 
 __all__ = ["batch_norm", "layer_norm", "group_norm", "batch_norm_running_stats"]
 
+# The I/O formats whose kernels round the statistics (float16, bfloat16) have a unit roundoff of
+# at most 2**-8. It bounds the one effect of those roundings that is not small: the rounded mean
+# shifts xhat by up to u |mean| / std, which grows with |mean| / std.
+_STATISTICS_ROUNDOFF = 2.0 ** -8
+
 
 @dataclass
 class _Standardised:
@@ -24,6 +31,7 @@ class _Standardised:
     x: np.ndarray
     axes: tuple[int, ...]
     eps: float
+    rounded_variance: bool = False
 
     def __post_init__(self):
         self.count = int(np.prod([self.x.shape[a] for a in self.axes]))
@@ -33,6 +41,19 @@ class _Standardised:
         self.xhat = centred * self.inv_std
         # Size of the statistics' rounding errors relative to xhat: |xhat| + mean|x| / std.
         self.xhat_error = np.abs(self.xhat) + np.mean(np.abs(self.x), axis=self.axes, keepdims=True) * self.inv_std
+        self._rounded_statistics()
+
+    def _rounded_statistics(self):
+        """Frameworks save the mean and 1/std rounded to the I/O format, and the backward (batch
+        norm's forward too) reads them (torch's half kernels). The mean's rounding shifts xhat by
+        up to ``shift * u``; 1/std carries ``k u``: one rounding, or (``rounded_variance``, torch's
+        bfloat16 batch norm) a variance taken about the rounded mean (larger by the squared
+        shift), its sum and itself rounded too. ``stats_rounded``: xhat's sensitivity to them
+        (first order in u, but for the shift)."""
+        self.shift = np.abs(self.mean) * self.inv_std
+        self.max_shift = _STATISTICS_ROUNDOFF * self.shift
+        self.rstd_roundings = 2.0 + self.max_shift * self.shift / 2.0 if self.rounded_variance else 1.0
+        self.stats_rounded = self.shift + self.rstd_roundings * (np.abs(self.xhat) + self.max_shift)
 
     def _mean(self, v: np.ndarray) -> np.ndarray:
         return np.mean(v, axis=self.axes, keepdims=True)
@@ -47,6 +68,23 @@ class _Standardised:
         h = np.abs(self._mean(g_hat * self.xhat))
         return np.abs(self.vjp(g_hat)) + self.inv_std * (
             a + self._mean(a) + h * self.xhat_error + np.abs(self.xhat) * self._mean(a * self.xhat_error))
+
+    def vjp_rounded(self, g_hat: np.ndarray) -> np.ndarray:
+        """The input gradient's sensitivity to the rounded saved statistics. With ``c = mean g``,
+        ``h = mean(g xhat)``, the vjp ``(g - c - xhat h) / std`` at a mean shifted by ``d`` changes
+        by ``d / std**2 (h + xhat' c)``, ``xhat' = xhat - d / std``; at 1/std scaled by
+        ``1 + e`` by ``e / std (g - c - 3 xhat' h')``, ``h' = h - c d / std``."""
+        c, h = self._mean(g_hat), self._mean(g_hat * self.xhat)
+        abs_c, abs_h, s = np.abs(c), np.abs(h), self.max_shift
+        mean_part = self.shift * self.inv_std * (np.abs(h + self.xhat * c) + s * abs_c)
+        rstd_part = self.rstd_roundings * self.inv_std * (
+            np.abs(g_hat - c - 3.0 * self.xhat * h) + 3.0 * s * (abs_h + (np.abs(self.xhat) + s) * abs_c))
+        return mean_part + rstd_part
+
+
+def _input_terms(std, g_hat: np.ndarray) -> ErrorTerms:
+    """Terms of the input gradient from the (signed) gradient w.r.t. xhat."""
+    return ErrorTerms(std.vjp_magnitude(np.abs(g_hat)), std.count + 2, rounded=std.vjp_rounded(g_hat))
 
 
 def _affine_shape(ndim: int, channel_axis: int | None, weight_shape: tuple[int, ...]) -> tuple[int, ...]:
@@ -88,18 +126,23 @@ def _affine_vjp(g, xhat, weight, bias, channel_axis, xhat_grad) -> dict:
     return grads
 
 
-def _affine_error_terms(g, xhat_error, count, weight, bias, channel_axis, input_terms) -> dict:
-    """Terms of ``y = w * xhat + b``; ``xhat_error`` sizes xhat's error, ``count`` its statistics' sums."""
+def _affine_error_terms(g, xhat_error, count, weight, bias, channel_axis, input_terms, *,
+                        stats_rounded, forward_rounded=False) -> dict:
+    """Terms of ``y = w * xhat + b``; ``xhat_error`` sizes xhat's error, ``count`` its statistics'
+    sums, ``stats_rounded`` xhat's sensitivity to the statistics the backward reads rounded to the
+    I/O format (the forward too where ``forward_rounded``)."""
     template = weight if weight is not None else bias
     shape = None if template is None else _affine_shape(g.ndim, channel_axis, template.shape)
     aw = 1.0 if weight is None else np.abs(weight.reshape(shape))
     ab = 0.0 if bias is None else np.abs(bias.reshape(shape))
     ag = np.abs(g)
-    terms = {"output": ErrorTerms(aw * xhat_error + ab, count + 2),
-             "input": input_terms(ag * aw)}
+    terms = {"output": ErrorTerms(aw * xhat_error + ab, count + 2,
+                                  rounded=aw * stats_rounded if forward_rounded else 0.0),
+             "input": input_terms(g * (1.0 if weight is None else weight.reshape(shape)))}
     if weight is not None:
         terms["weight"] = ErrorTerms(_sum_to(ag * xhat_error, shape, weight.shape),
-                                     g.size // weight.size + count)
+                                     g.size // weight.size + count,
+                                     rounded=_sum_to(ag * stats_rounded, shape, weight.shape))
     if bias is not None:
         terms["bias"] = ErrorTerms(_sum_to(ag, shape, bias.shape), g.size // bias.size)
     return terms
@@ -164,6 +207,7 @@ class _Fixed:
         centred = self.x - self.mean.reshape(shape)
         self.xhat = centred * self.inv_std
         self.xhat_error = (np.abs(self.x) + np.abs(self.mean.reshape(shape))) * self.inv_std + np.abs(self.xhat)
+        self.stats_rounded = 0.0  # the running statistics are inputs
 
     def vjp(self, g_hat: np.ndarray) -> np.ndarray:
         return g_hat * self.inv_std
@@ -171,10 +215,13 @@ class _Fixed:
     def vjp_magnitude(self, g_hat: np.ndarray) -> np.ndarray:
         return np.abs(g_hat) * self.inv_std
 
+    def vjp_rounded(self, g_hat: np.ndarray) -> float:
+        return 0.0
+
 
 def _standardise_batch(input, running_mean, running_var, training, eps):
     if training:
-        return _Standardised(input, _bn_axes(input), eps)
+        return _Standardised(input, _bn_axes(input), eps, rounded_variance=True)
     return _Fixed(input, running_mean, running_var, eps)
 
 
@@ -186,8 +233,10 @@ def _batch_norm_vjp(g, input, weight=None, bias=None, *, running_mean, running_v
 def _batch_norm_error_terms(g, input, weight=None, bias=None, *, running_mean, running_var, training,
                             momentum, eps):
     std = _standardise_batch(input, running_mean, running_var, training, eps)
+    # torch's half kernels normalise with the rounded statistics in the forward too.
     return _affine_error_terms(g, std.xhat_error, std.count, weight, bias, 1,
-                               lambda g_hat: ErrorTerms(std.vjp_magnitude(g_hat), std.count + 2))
+                               functools.partial(_input_terms, std),
+                               stats_rounded=std.stats_rounded, forward_rounded=True)
 
 
 def _batch_norm_space(draw) -> CaseConfig:
@@ -242,7 +291,8 @@ def batch_norm(input, weight=None, bias=None, *, running_mean=None, running_var=
     Notes
     -----
     ``momentum`` only affects :func:`batch_norm_running_stats`. Error terms: the statistics are sums
-    of ``N * spatial`` terms; M = ``|w| (|xhat| + mean|x| / std) + |b|``.
+    of ``N * spatial`` terms; M = ``|w| (|xhat| + mean|x| / std) + |b|``; ``rounded``: the mean and
+    1/std saved in the I/O format, read by the forward and the backward.
     """
     std = _standardise_batch(input, running_mean, running_var, training, eps)
     return _affine(std.xhat, weight, bias, 1)
@@ -301,7 +351,7 @@ def _layer_norm_vjp(g, input, weight=None, bias=None, *, normalized_shape, eps):
 def _layer_norm_error_terms(g, input, weight=None, bias=None, *, normalized_shape, eps):
     std = _Standardised(input, _ln_axes(input, normalized_shape), eps)
     return _affine_error_terms(g, std.xhat_error, std.count, weight, bias, None,
-                               lambda g_hat: ErrorTerms(std.vjp_magnitude(g_hat), std.count + 2))
+                               functools.partial(_input_terms, std), stats_rounded=std.stats_rounded)
 
 
 def _layer_norm_space(draw) -> CaseConfig:
@@ -372,10 +422,14 @@ def _group_norm_vjp(g, input, weight=None, bias=None, *, num_groups, eps):
 
 def _group_norm_error_terms(g, input, weight=None, bias=None, *, num_groups, eps):
     std = _group_standardised(input, num_groups, eps)
-    return _affine_error_terms(
-        g, std.xhat_error.reshape(input.shape), std.count, weight, bias, 1,
-        lambda g_hat: ErrorTerms(std.vjp_magnitude(_grouped(g_hat, num_groups)).reshape(input.shape),
-                                 std.count + 2))
+
+    def input_terms(g_hat):
+        terms = _input_terms(std, _grouped(g_hat, num_groups))
+        return ErrorTerms(terms.magnitude.reshape(input.shape), terms.length,
+                          rounded=terms.rounded.reshape(input.shape))
+
+    return _affine_error_terms(g, std.xhat_error.reshape(input.shape), std.count, weight, bias, 1,
+                               input_terms, stats_rounded=std.stats_rounded.reshape(input.shape))
 
 
 def _group_norm_space(draw) -> CaseConfig:

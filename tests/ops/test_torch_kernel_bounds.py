@@ -29,6 +29,8 @@ PAIRS = [
     ("mse_loss", "float16"), ("mse_loss", "bfloat16"),
     ("binary_cross_entropy_with_logits", "float16"), ("binary_cross_entropy_with_logits", "bfloat16"),
     ("cross_entropy", "float16"), ("cross_entropy", "bfloat16"),
+    ("batch_norm", "float16"), ("batch_norm", "bfloat16"), ("group_norm", "float16"),
+    ("group_norm", "bfloat16"),
 ]
 # A relative nudge of the gradients that the bound must catch: 4 ulps in the half formats; the
 # float32 bound of an elementwise op is ~10 u (c(k) = 5 sqrt(k) of the wide term), so 16 ulps.
