@@ -46,7 +46,7 @@ __all__ = ["SCHEMA", "SCHEMA_VERSION", "MANIFEST", "Bundle", "BundleError", "rea
            "write_bundle"]
 
 SCHEMA = "refops.bundle"
-SCHEMA_VERSION = "1.0"
+SCHEMA_VERSION = "1.1"  # 1.1: layer bundles (config.op and config.cases, see refops.harness.replay)
 MANIFEST = "manifest.json"
 
 REQUIRED_KEYS = ("config", "formats", "device", "seed")

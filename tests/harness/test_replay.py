@@ -28,6 +28,16 @@ def test_named_model_inputs_name_the_bundle_arrays(tmp_path):
     assert "grad.tiles" in {c.tensor for c in slipped.cases[0].comparisons if not c.passed}
 
 
+def test_a_bundle_of_the_previous_minor_version_still_replays(tmp_path):
+    # The compatibility rule of refops.golden: a reader accepts every minor version of its major.
+    bundle = record_model(MODEL, [(1, 1, 8, 8)], tmp_path / "b", dtype="float32")
+    manifest = json.loads((bundle / "manifest.json").read_text())
+    assert manifest["schema_version"] == "1.1"
+    manifest["schema_version"] = "1.0"  # what refops wrote before layer bundles
+    (bundle / "manifest.json").write_text(json.dumps(manifest))
+    assert replay_model(MODEL, bundle).passed
+
+
 def test_replay_refuses_a_tampered_bundle(tmp_path):
     bundle = record_model(MODEL, [(1, 1, 8, 8)], tmp_path / "b", dtype="float32")
     target = bundle / "input0.npy"
