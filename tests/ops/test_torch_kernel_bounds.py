@@ -10,6 +10,7 @@ import pytest
 import torch
 
 from refops.harness import check_layer
+from refops.harness.deviations import applicable
 from refops.numerics import get_format
 
 _spec = importlib.util.spec_from_file_location(
@@ -19,7 +20,8 @@ _spec.loader.exec_module(torch_layers)
 FACTORIES = torch_layers.FACTORIES
 
 # (op, dtype) pairs whose error terms model intermediates that torch rounds (each op's
-# `rounded` or `cancelling` hook, or its error-terms function, names them).
+# `rounded` or `cancelling` hook, or its error-terms function, names them; layer norm's affine
+# gradients also need the declared deviation of refops/harness/deviations.py).
 PAIRS = [
     ("atan", "float16"), ("atan", "bfloat16"), ("sigmoid", "float16"),
     ("logsigmoid", "float16"), ("logsigmoid", "bfloat16"), ("softsign", "float16"),
@@ -30,7 +32,7 @@ PAIRS = [
     ("binary_cross_entropy_with_logits", "float16"), ("binary_cross_entropy_with_logits", "bfloat16"),
     ("cross_entropy", "float16"), ("cross_entropy", "bfloat16"),
     ("batch_norm", "float16"), ("batch_norm", "bfloat16"), ("group_norm", "float16"),
-    ("group_norm", "bfloat16"),
+    ("group_norm", "bfloat16"), ("layer_norm", "float16"), ("layer_norm", "bfloat16"),
 ]
 # A relative nudge of the gradients that the bound must catch: 4 ulps in the half formats; the
 # float32 bound of an elementwise op is ~10 u (c(k) = 5 sqrt(k) of the wide term), so 16 ulps.
@@ -95,5 +97,15 @@ def test_results_off_by_a_few_ulps_are_caught(op, dtype):
                                   if not c.passed)
     tensors = set(shares_by_tensor(report))
     assert {"output", "input"} <= tensors
-    for tensor in tensors:
+    # A tensor under a declared half-format accumulation (refops/harness/deviations.py) is allowed
+    # sqrt(k) * u * M, the price of that deviation: it must be caught at 32 ulps instead, in half
+    # the cases (rows of equal values have a zero affine gradient that no nudge moves).
+    summed_in_half = {t for t in tensors if applicable(op, dtype, t) is not None}
+    for tensor in tensors - summed_in_half:
         assert flagged[tensor] >= 12, (tensor, flagged)
+    if summed_in_half:
+        coarse = check_layer(nudged(op, 1 + 32 * get_format(dtype).eps), op, cases=24, seed=5, dtype=dtype,
+                             shrink=0)
+        caught = collections.Counter(c.tensor for case in coarse.cases for c in case.comparisons if not c.passed)
+        for tensor in summed_in_half:
+            assert caught[tensor] >= 10, (tensor, caught)
