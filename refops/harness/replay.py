@@ -12,11 +12,13 @@ Two kinds of bundle (:mod:`refops.golden`):
 
 ``replay_model`` / ``replay_layer`` run the new backend on the bundle's values and compare with
 the references under :class:`~refops.numerics.tolerance.Calibrated`: ``factor`` times the error
-the trusted run showed, per tensor (per case for a layer bundle). :func:`replay` picks the kind.
+the trusted run showed, per tensor (for a layer bundle: times the largest share of the rounding
+bound it used over the recorded cases, times each case's bound). :func:`replay` picks the kind.
 """
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Callable
 
 import numpy as np
 
@@ -28,7 +30,7 @@ from .. import ops
 from ..ops._registry import CaseConfig
 from ..ops._space import pinned_value
 from .runner import (DTYPES, Case, WorkerPool, _job, allowed_errors, compare_all, draw_case, new_verdict,
-                     oracle_results, record_fault)
+                     oracle_results, record_fault, target_name)
 from .subject import load_factory, model_job, model_parameters, named_shapes, run_subject
 from .verdict import CaseResult, Report
 
@@ -123,12 +125,13 @@ def _tuples(values: dict) -> dict:
     return {k: tuple(v) if isinstance(v, list) else v for k, v in values.items()}
 
 
-def record_layer(target: str, op: str, directory, *, cases: int = 20, seed: int = 0, dtype: str = "float32",
+def record_layer(target: str | Callable, op: str, directory, *, cases: int = 20, seed: int = 0, dtype: str = "float32",
                  pins=None, timeout: float = 60.0) -> Path:
     """Record the trusted layer ``target`` on ``cases`` cases of ``op`` (pinned by ``pins``).
 
     The references are the float64 oracle's results; per case and tensor the manifest keeps the
-    share of the rounding bound the trusted run used. Returns the bundle folder."""
+    share of the rounding bound the trusted run used. ``target`` is a TARGET string (run in a
+    worker process) or a layer factory (run here). Returns the bundle folder."""
     oracle = ops.get(op)
     if dtype not in DTYPES:
         raise ValueError(f"dtype={dtype!r}: expected one of {', '.join(DTYPES)}")
@@ -154,7 +157,7 @@ def record_layer(target: str, op: str, directory, *, cases: int = 20, seed: int 
                              "params": _json_safe({k: v for k, v in case.params.items() if k not in case.arrays}),
                              "absent": [k for k, v in case.arrays.items() if v is None],
                              "shares": _trusted_shares(result, references, allowed)})
-    manifest = {"config": {"target": target, "op": op, "pins": _json_safe(pins), "cases": recorded},
+    manifest = {"config": {"target": target_name(target), "op": op, "pins": _json_safe(pins), "cases": recorded},
                 "formats": {"subject": dtype, "reference": "float64 oracle"}, "device": "cpu", "seed": seed}
     return golden.write_bundle(directory, arrays=stored, manifest=manifest)
 
@@ -171,7 +174,7 @@ def _recorded_case(oracle, entry: dict, arrays: dict) -> Case:
     return Case(entry["case_id"], config, entry["values"], values, params, cotangent)
 
 
-def replay_layer(target: str, directory, *, dtype: str | None = None, factor: float = 4.0,
+def replay_layer(target: str | Callable, directory, *, dtype: str | None = None, factor: float = 4.0,
                  timeout: float = 60.0) -> Report:
     """Run the layer ``target`` on every case of a layer bundle and judge it against the
     references: ``factor`` times the largest share of the rounding bound the trusted run used
@@ -184,7 +187,8 @@ def replay_layer(target: str, directory, *, dtype: str | None = None, factor: fl
     tensors = {t for entry in config["cases"] for t in entry["shares"]}
     shares = {t: max(entry["shares"].get(t, 0.0) for entry in config["cases"]) for t in sorted(tensors)}
     model = Calibrated(shares, factor=factor, floor=tiny, bound=RoundingBound(floor=tiny))
-    report = Report(op=None, target=target, dtype=dtype, seed=bundle.manifest["seed"], model=model.describe(),
+    report = Report(op=None, target=target_name(target), dtype=dtype, seed=bundle.manifest["seed"],
+                    model=model.describe(),
                     against=f"the recorded trusted run of {config['target']} ({config['op']})")
     with WorkerPool(target, timeout, 1) as pool:
         for entry in config["cases"]:
@@ -192,7 +196,7 @@ def replay_layer(target: str, directory, *, dtype: str | None = None, factor: fl
             prefix = f"case.{case.case_id}.reference."
             references = {k[len(prefix):]: np.asarray(v) for k, v in bundle.arrays.items() if k.startswith(prefix)}
             verdict = new_verdict(case)
-            verdict.replay = f"refops replay {target} {directory} --dtype {dtype}"
+            verdict.replay = f"refops replay {target_name(target)} {directory} --dtype {dtype}"
             result = pool.run_one(_job(oracle, case, dtype, "contiguous", "cpu"))
             if not record_fault(verdict, result):
                 allowed, applied = allowed_errors(oracle, case, references, dtype, model)
@@ -202,8 +206,9 @@ def replay_layer(target: str, directory, *, dtype: str | None = None, factor: fl
     return report
 
 
-def replay(target: str, directory, *, dtype: str | None = None, factor: float = 4.0) -> Report:
-    """Replay a model or a layer bundle, whichever ``directory`` holds."""
+def replay(target: str | Callable, directory, *, dtype: str | None = None, factor: float = 4.0) -> Report:
+    """Replay a model or a layer bundle, whichever ``directory`` holds (a layer bundle also takes
+    a factory callable, run in this process)."""
     if "op" in golden.read_bundle(directory).manifest["config"]:
         return replay_layer(target, directory, dtype=dtype, factor=factor)
     return replay_model(target, directory, dtype=dtype, factor=factor)

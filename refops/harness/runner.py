@@ -141,20 +141,11 @@ def _job(op, case: Case, dtype: str, layout: str, device: str) -> dict:
            "params": case.params, "dtype": dtype, "layout": layout, "device": device,
            "cotangent": case.cotangent, "batch_alone": _samplewise(op, case),
            "self_fd": dtype == "float64" and case.family != "tiny",
-           "isolate": bool(_unsafe_in_process(op, case))}
+           "isolate": _unsafe_in_process(op, case)}  # why it must run alone ("" when it need not)
     if job["self_fd"]:
         positional = tuple(case.arrays.get(name) for name in op.arrays)
         job["kink_distance"] = op.kink_distance(*positional, **case.params)
     return job
-
-
-def _run_here(op, factory: Callable, case: Case, job: dict) -> dict:
-    """Run a case in this process, unless a declared deviation says torch must not."""
-    from .subject import run_subject
-    reason = _unsafe_in_process(op, case)
-    if reason:
-        return {"skip": reason}
-    return run_subject(factory, job)
 
 
 def _unsafe_in_process(op, case: Case) -> str:
@@ -291,6 +282,11 @@ def parse_case_id(case_id: str) -> tuple[int, int]:
     return seed, index
 
 
+def target_name(target: str | Callable) -> str:
+    """How reports and bundles name a subject: its TARGET string, or the factory's name."""
+    return target if isinstance(target, str) else getattr(target, "__qualname__", repr(target))
+
+
 def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int = 0, dtype: str = "float32",
                 pins: Mapping[str, Any] | None = None, layout: str = "contiguous", device: str = "cpu",
                 timeout: float = 60.0, budget: float | None = None, model=None,
@@ -308,7 +304,7 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
     the smallest configuration that still fails the same way is attached (``CaseResult.smallest``).
     The verdicts do not depend on ``jobs`` or ``shard``.
     """
-    from .subject import LAYOUTS, run_subject
+    from .subject import LAYOUTS
     oracle = ops.get(op)
     if dtype not in DTYPES:
         raise ValueError(f"dtype={dtype!r}: expected one of {', '.join(DTYPES)}")
@@ -321,7 +317,7 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
     # Default floor: the smallest normal number, so a subject that flushes or loses subnormal
     # results (common on accelerators) is not failed for that alone; pass a model to be stricter.
     model = model or RoundingBound(floor=get_format(dtype).tiny)
-    name = target if isinstance(target, str) else getattr(target, "__qualname__", repr(target))
+    name = target_name(target)
     report = Report(op=op, target=name, dtype=dtype, seed=seed, model=model.describe())
     part, parts = shard
     if not (isinstance(parts, int) and isinstance(part, int) and 0 <= part < parts):
@@ -338,8 +334,7 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
             return []
         worker, judge_worker = lane
         jobs_ = [_job(oracle, case, dtype, layout, device) for case in chunk]
-        results = worker.run_many(jobs_) if worker else [_run_here(oracle, target, case, job)
-                                                         for case, job in zip(chunk, jobs_)]
+        results = worker.run_many(jobs_) if worker else [pool.run_here(job) for job in jobs_]
         began = time.perf_counter()
         requests = [{"op": op, "case": case, "result": result, "dtype": dtype, "model": model,
                      "use_deviations": use_deviations} for case, result in zip(chunk, results)]
@@ -354,33 +349,41 @@ def check_layer(target: str | Callable, op: str, *, cases: int = 50, seed: int =
             judged.append((verdict, used))
         return judged
 
-    with WorkerPool(target if isinstance(target, str) else None, timeout, jobs) as pool:
+    with WorkerPool(target, timeout, jobs) as pool:
         for judged in pool.map(run_chunk, chunks):
             for verdict, used in judged:
                 report.cases.append(verdict)
                 applied.update(used)
             if progress:
                 progress(len(report.cases), len(drawn))
-        run = pool.run_one if isinstance(target, str) else (lambda job: run_subject(target, job))
         for verdict in [c for c in report.cases if c.status == "failed"][:shrink]:
-            _shrink(oracle, verdict, run, dtype, layout, device, model, use_deviations, pins, name, op)
+            _shrink(oracle, verdict, pool.run_one, dtype, layout, device, model, use_deviations, pins, name, op)
     report.deviations = sorted(applied)
     return report
 
 
 class WorkerPool:
-    """Lanes of worker processes for a TARGET string: ``size`` lanes of a subject worker, each
-    with a judge worker when there is more than one lane (one lane judges in this process; a
-    callable target runs in this process, with no workers). ``map(fn, items)`` calls
-    ``fn(item, (worker, judge))`` with a free lane, results in order."""
+    """Where a target's cases run. A TARGET string gets ``size`` lanes of a subject worker
+    process, each with a judge process when there is more than one lane (one lane judges in this
+    process); a factory callable runs here, with no workers. ``map(fn, items)`` calls
+    ``fn(item, (worker, judge))`` with a free lane, results in order; ``run_one(job)`` runs one
+    job on a subject worker, or here."""
 
-    def __init__(self, target: str | None, timeout: float, size: int):
+    def __init__(self, target: str | Callable, timeout: float, size: int):
         from .worker import JUDGE, Worker
+        self.factory = None if isinstance(target, str) else target
         self.free: queue.Queue = queue.Queue()
         self.lanes = [(Worker(target, timeout), Worker(JUDGE, timeout) if size > 1 else None)
-                      for _ in range(size)] if target else []
+                      for _ in range(size)] if isinstance(target, str) else []
         for lane in self.lanes or [(None, None)]:
             self.free.put(lane)
+
+    def run_here(self, job: dict) -> dict:
+        """Run a job in this process, unless a declared deviation says it must run alone."""
+        from .subject import run_subject
+        if job.get("isolate"):
+            return {"skip": job["isolate"]}
+        return run_subject(self.factory, job)
 
     def __enter__(self) -> "WorkerPool":
         return self
@@ -406,5 +409,6 @@ class WorkerPool:
             yield from threads.map(lambda item: self._with_lane(fn, item), items)
 
     def run_one(self, job: dict) -> dict:
-        """``job`` on a subject worker."""
+        if not self.lanes:
+            return self.run_here(job)
         return self._with_lane(lambda item, lane: lane[0].run(item), job)

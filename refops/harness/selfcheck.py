@@ -14,8 +14,8 @@ from typing import Callable
 
 import numpy as np
 
-from .runner import WorkerPool, parse_case_id, record_fault
-from .subject import load_factory, model_job, model_parameters, named_shapes, run_subject
+from .runner import WorkerPool, parse_case_id, record_fault, target_name
+from .subject import load_factory, model_job, model_parameters, named_shapes
 from .verdict import CaseResult, Report
 
 MODEL = ("central finite differences of the subject's own float64 forward, error estimated from "
@@ -65,15 +65,14 @@ def check_self(target: str | Callable, input_shapes, *, cases: int = 5,
     """
     shapes = named_shapes(input_shapes)
     factory = load_factory(target) if isinstance(target, str) else target
-    name = target if isinstance(target, str) else getattr(target, "__qualname__", repr(target))
+    name = target_name(target)
     report = Report(op=None, target=name, dtype="float64", seed=seed, model=MODEL, against=AGAINST)
     plan = [parse_case_id(c) for c in case_ids] if case_ids else [(seed, i) for i in range(cases)]
     shape_args = "".join(f" --input-shape {'' if n == f'input{i}' else n + '='}{','.join(map(str, s))}"
                          for i, (n, s) in enumerate(shapes.items()))
-    with WorkerPool(target if isinstance(target, str) else None, timeout, 1) as pool:
-        run = pool.run_one if isinstance(target, str) else (lambda job: run_subject(factory, job))
+    with WorkerPool(target if isinstance(target, str) else factory, timeout, 1) as pool:
         for case_seed, index in plan:
-            verdict = _one_case(factory, run, shapes, case_seed, index)
+            verdict = _one_case(factory, pool.run_one, shapes, case_seed, index)
             verdict.replay = f"refops check {name}{shape_args} --case {verdict.case_id}"
             report.cases.append(verdict)
             if progress:

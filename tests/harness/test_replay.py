@@ -65,34 +65,39 @@ PINS = {"padding_on_the_high_side": {"padding": 1, "padding_mode": "zeros"},
 
 @pytest.mark.parametrize("dtype", ["float32", "bfloat16"])
 def test_ports_replay_on_a_bundle_of_torchs_conv(tmp_path, dtype):
-    bundle = record_layer(TORCH_CONV, "conv2d", tmp_path / "b", cases=16, seed=2, dtype=dtype)
+    import torch_layers
+    from refops.examples.denoiser import tile_conv
+    bundle = record_layer(torch_layers.conv2d, "conv2d", tmp_path / "b", cases=10, seed=2, dtype=dtype)
     manifest = read_bundle(bundle).manifest
     cases = manifest["config"]["cases"]
     # The recorded cases are the ones `refops check` draws for the same seed.
-    drawn = check_layer(TORCH_CONV, "conv2d", cases=16, seed=2, dtype=dtype, shrink=0)
+    drawn = check_layer(torch_layers.conv2d, "conv2d", cases=10, seed=2, dtype=dtype, shrink=0)
     assert [c["case_id"] for c in cases] == [c.case_id for c in drawn.cases]
     assert all(c["drawn"]["kernel_size"] == list(np.atleast_1d(d.config["kernel_size"])) or
                c["drawn"]["kernel_size"] == d.config["kernel_size"] for c, d in zip(cases, drawn.cases))
     # Rounding shows: the trusted run used a visible share of the bound for the output.
     assert 0 < max(c["shares"]["output"] for c in cases) <= 1
-    for port in (TORCH_CONV, "refops.examples.denoiser:tile_conv", "refops.examples.layers:conv2d"):
+    for port in (torch_layers.conv2d, tile_conv, layers.conv2d):
         report = replay(port, bundle)
-        assert len(report.cases) == 16 and report.passed, port
+        assert len(report.cases) == 10 and report.passed, port
 
 
 @pytest.mark.parametrize("defect", sorted(set(layers.DEFECTS) - {"input_changed_in_place"}))
 def test_each_conv_slip_fails_its_replay(tmp_path, defect):
-    bundle = record_layer(TORCH_CONV, "conv2d", tmp_path / "b", cases=12, seed=4, pins=PINS.get(defect))
-    report = replay_layer(f"refops.examples.layers:conv2d_{defect}", bundle)
+    import torch_layers
+    # Factories (not TARGET strings) run in this process: no worker to start per test.
+    bundle = record_layer(torch_layers.conv2d, "conv2d", tmp_path / "b", cases=12, seed=4, pins=PINS.get(defect))
+    assert read_bundle(bundle).manifest["config"]["target"] == "conv2d"
+    report = replay_layer(getattr(layers, f"conv2d_{defect}"), bundle)
     assert not report.passed, defect
 
 
 def test_the_slipped_tile_conv_fails_on_the_input_gradient_only(tmp_path):
+    from refops.examples.denoiser import tile_conv, tile_conv_slipped
     pins = {"padding": "same", "stride": 1, "padding_mode": "zeros"}
-    bundle = record_layer("refops.examples.denoiser:tile_conv", "conv2d", tmp_path / "b", cases=10, pins=pins,
-                          dtype="bfloat16")
-    assert replay("refops.examples.denoiser:tile_conv", bundle).passed
-    slipped = replay("refops.examples.denoiser:tile_conv_slipped", bundle)
+    bundle = record_layer(tile_conv, "conv2d", tmp_path / "b", cases=10, pins=pins, dtype="bfloat16")
+    assert replay(tile_conv, bundle).passed
+    slipped = replay(tile_conv_slipped, bundle)
     failing = {c.tensor for case in slipped.failures for c in case.comparisons if not c.passed}
     assert failing == {"input"}
     assert all(c.config["padding"] == "same" for c in slipped.cases)
