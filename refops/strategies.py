@@ -51,7 +51,7 @@ from . import ops
 from .numerics.formats import Format, get_format, round_to, ulp
 from .ops import _checks
 from .ops._registry import CaseConfig, Op
-from .ops._space import PinError, RandomDraw, pinned_value
+from .ops._space import PinError, PinnedDraw, RandomDraw
 
 __all__ = ["FAMILIES", "SPATIAL_NAMES", "Case", "HypothesisDraw", "cases", "configs",
            "kink_points", "value_arrays"]
@@ -73,7 +73,7 @@ _PIN_PROBES = 64       # random draws of a space used to learn which names it dr
 # ---------------------------------------------------------------------------------------------
 # Interpreting a configuration space
 
-class HypothesisDraw:
+class HypothesisDraw(PinnedDraw):
     """The :class:`refops.ops._space.Draw` protocol over hypothesis draws.
 
     ``draw`` is what ``st.data()`` or ``@st.composite`` provides (a function from a strategy to a
@@ -93,37 +93,20 @@ class HypothesisDraw:
 
     def __init__(self, draw: Callable[[st.SearchStrategy], Any],
                  pins: Mapping[str, Any] | None = None, *, max_spatial: int | None = None):
+        super().__init__(pins)
         self._draw = draw
-        self.pins = {k: pinned_value(v) for k, v in (pins or {}).items()}
         self.max_spatial = max_spatial
-        self.drawn: dict[str, Any] = {}
 
-    def _record(self, name: str, value: Any) -> Any:
-        self.drawn[name] = value
-        return value
-
-    def integer(self, name: str, low: int, high: int) -> int:
-        if name in self.pins:
-            return self._record(name, self.pins[name])
-        if high < low:
-            raise PinError(f"{name}: no valid value (needs {low} <= {name} <= {high}); "
-                           "a pinned value leaves no room")
+    def _integer(self, name: str, low: int, high: int) -> int:
         if self.max_spatial is not None and name in SPATIAL_NAMES:
             high = max(low, min(high, self.max_spatial))
-        return self._record(name, self._draw(st.integers(low, high)))
+        return self._draw(st.integers(low, high))
 
-    def choice(self, name: str, options: Sequence[Any]) -> Any:
-        if name in self.pins:
-            return self._record(name, self.pins[name])
-        if not options:
-            raise PinError(f"{name}: no valid option; a pinned value leaves no room")
-        return self._record(name, self._draw(st.sampled_from(list(options))))
+    def _choice(self, name: str, options: Sequence[Any]) -> Any:
+        return self._draw(st.sampled_from(list(options)))
 
-    def real(self, name: str, low: float, high: float) -> float:
-        if name in self.pins:
-            return self._record(name, self.pins[name])
-        return self._record(name, self._draw(st.floats(low, high, allow_nan=False,
-                                                       allow_infinity=False)))
+    def _real(self, name: str, low: float, high: float) -> float:
+        return self._draw(st.floats(low, high, allow_nan=False, allow_infinity=False))
 
 
 def configs(op: str | Op, *, pins: Mapping[str, Any] | None = None,

@@ -16,7 +16,7 @@ import sys
 import time
 import traceback
 from pathlib import Path
-from typing import Any, Callable, Mapping
+from typing import Callable, Mapping
 
 import numpy as np
 

@@ -34,19 +34,13 @@ def pinned_value(value: Any) -> Any:
     return tuple(pinned_value(v) for v in value) if isinstance(value, list) else value
 
 
-class RandomDraw:
-    """Seeded numpy interpreter of a space.
+class PinnedDraw:
+    """What every interpreter of a space shares: pins are returned as given (lists become tuples),
+    an empty range or option list is a :class:`PinError`, and every value is recorded in
+    ``drawn``. A subclass draws the free values: ``_integer``, ``_choice``, ``_real``."""
 
-    With probability ``edge`` an integer draw takes one of its bounds and a choice its first
-    option (spaces list the edge option first), so small kernels, stride 1 and batch 1 show up
-    often. Every drawn value is recorded in ``drawn``; pins are returned as given.
-    """
-
-    def __init__(self, rng: np.random.Generator, pins: Mapping[str, Any] | None = None,
-                 edge: float = 0.25):
-        self.rng = rng
+    def __init__(self, pins: Mapping[str, Any] | None = None):
         self.pins = {k: pinned_value(v) for k, v in (pins or {}).items()}
-        self.edge = edge
         self.drawn: dict[str, Any] = {}
 
     def _record(self, name: str, value: Any) -> Any:
@@ -59,27 +53,51 @@ class RandomDraw:
         if high < low:
             raise PinError(f"{name}: no valid value (needs {low} <= {name} <= {high}); "
                            "a pinned value leaves no room")
-        if self.rng.random() < self.edge:
-            return self._record(name, int(self.rng.choice([low, high])))
-        return self._record(name, int(self.rng.integers(low, high + 1)))
+        return self._record(name, self._integer(name, low, high))
 
     def choice(self, name: str, options: Sequence[Any]) -> Any:
         if name in self.pins:
             return self._record(name, self.pins[name])
         if not options:
             raise PinError(f"{name}: no valid option; a pinned value leaves no room")
-        if self.rng.random() < self.edge:
-            return self._record(name, options[0])
-        return self._record(name, options[int(self.rng.integers(len(options)))])
+        return self._record(name, self._choice(name, options))
 
     def real(self, name: str, low: float, high: float) -> float:
         if name in self.pins:
             return self._record(name, self.pins[name])
-        return self._record(name, float(self.rng.uniform(low, high)))
+        return self._record(name, self._real(name, low, high))
 
     def unused_pins(self) -> list[str]:
         """Pinned names that the space never asked for (a typo, or a parameter of another op)."""
         return sorted(set(self.pins) - set(self.drawn))
+
+
+class RandomDraw(PinnedDraw):
+    """Seeded numpy interpreter of a space.
+
+    With probability ``edge`` an integer draw takes one of its bounds and a choice its first
+    option (spaces list the edge option first), so small kernels, stride 1 and batch 1 show up
+    often. Every drawn value is recorded in ``drawn``; pins are returned as given.
+    """
+
+    def __init__(self, rng: np.random.Generator, pins: Mapping[str, Any] | None = None,
+                 edge: float = 0.25):
+        super().__init__(pins)
+        self.rng = rng
+        self.edge = edge
+
+    def _integer(self, name: str, low: int, high: int) -> int:
+        if self.rng.random() < self.edge:
+            return int(self.rng.choice([low, high]))
+        return int(self.rng.integers(low, high + 1))
+
+    def _choice(self, name: str, options: Sequence[Any]) -> Any:
+        if self.rng.random() < self.edge:
+            return options[0]
+        return options[int(self.rng.integers(len(options)))]
+
+    def _real(self, name: str, low: float, high: float) -> float:
+        return float(self.rng.uniform(low, high))
 
 
 def plain_arrays(op: Any, config: Any, rng: np.random.Generator) -> tuple[tuple, dict]:

@@ -11,26 +11,11 @@ from hypothesis import given, settings, strategies as st
 import refops.ops as ops
 from refops.ops import conv as conv_module
 from refops.ops._space import RandomDraw, plain_arrays
+from refops.strategies import HypothesisDraw
 
 MODULES = {"conv1d": torch.nn.Conv1d, "conv2d": torch.nn.Conv2d, "conv3d": torch.nn.Conv3d,
            "conv_transpose2d": torch.nn.ConvTranspose2d}
 RTOL = 1e-12  # relative to the magnitude M of each element's sum
-
-
-class LocalDraw:
-    """The Draw protocol over hypothesis ``st.data()``."""
-
-    def __init__(self, data):
-        self.data = data
-
-    def integer(self, name, low, high):
-        return self.data.draw(st.integers(low, high), label=name)
-
-    def choice(self, name, options):
-        return self.data.draw(st.sampled_from(options), label=name)
-
-    def real(self, name, low, high):
-        return self.data.draw(st.floats(low, high), label=name)
 
 
 def torch_layer_run(name, layer, input, weight, bias, g):
@@ -74,7 +59,7 @@ def check_against_torch(name, config, seed):
 @given(data=st.data())
 def test_forward_and_vjp_match_torch_over_the_space(name, data):
     # Reference: torch.nn.ConvNd / ConvTranspose2d, float64 forward and autograd.
-    config = ops.get(name).space(LocalDraw(data))
+    config = ops.get(name).space(HypothesisDraw(data.draw))
     check_against_torch(name, config, data.draw(st.integers(0, 2 ** 16), label="seed"))
 
 

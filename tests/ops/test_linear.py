@@ -9,24 +9,9 @@ from hypothesis import given, settings, strategies as st
 
 import refops.ops as ops
 from refops.ops._space import RandomDraw, plain_arrays
+from refops.strategies import HypothesisDraw
 
 RTOL = 1e-12  # relative to the magnitude M of each element's sum
-
-
-class LocalDraw:
-    """The Draw protocol over hypothesis ``st.data()``."""
-
-    def __init__(self, data):
-        self.data = data
-
-    def integer(self, name, low, high):
-        return self.data.draw(st.integers(low, high), label=name)
-
-    def choice(self, name, options):
-        return self.data.draw(st.sampled_from(options), label=name)
-
-    def real(self, name, low, high):
-        return self.data.draw(st.floats(low, high), label=name)
 
 
 def torch_linear_run(x, w, b, g):
@@ -61,7 +46,7 @@ def check_against_torch(config, seed):
 @given(data=st.data())
 def test_forward_and_vjp_match_torch_over_the_space(data):
     # Reference: torch.nn.functional.linear, float64 autograd.
-    config = ops.linear.space(LocalDraw(data))
+    config = ops.linear.space(HypothesisDraw(data.draw))
     check_against_torch(config, data.draw(st.integers(0, 2 ** 16), label="seed"))
 
 

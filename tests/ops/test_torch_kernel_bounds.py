@@ -5,7 +5,6 @@ import collections
 import importlib.util
 from pathlib import Path
 
-import numpy as np
 import pytest
 import torch
 
