@@ -7,7 +7,7 @@ from typing import Any
 import numpy as np
 
 from ..ops import _checks
-from .formats import get_format, ulp_distance
+from .formats import get_format, ulp, ulp_distance
 
 __all__ = ["Worst", "Comparison", "compare"]
 
@@ -122,14 +122,20 @@ def compare(tensor: str, subject: Any, reference: Any, allowed: Any, fmt: Any, *
     worst = _checks.as_int("worst", worst, min_value=0)
 
     finite = np.isfinite(subject) & np.isfinite(reference)
-    same_nonfinite = ~finite & ((subject == reference) | (np.isnan(subject) & np.isnan(reference)))
-    mismatch = ~finite & ~same_nonfinite
-    error = np.abs(np.where(finite, subject, 0.0) - np.where(finite, reference, 0.0))
+    if finite.all():  # the common case: no masks
+        same_nonfinite = mismatch = np.zeros(reference.shape, dtype=bool)
+        error = np.abs(subject - reference)
+        ulps = error / ulp(reference, fmt)
+        relative = error / np.maximum(np.abs(reference), fmt.tiny)
+    else:
+        same_nonfinite = ~finite & ((subject == reference) | (np.isnan(subject) & np.isnan(reference)))
+        mismatch = ~finite & ~same_nonfinite
+        error = np.abs(np.where(finite, subject, 0.0) - np.where(finite, reference, 0.0))
+        ulps = ulp_distance(subject, reference, fmt)
+        relative = error / np.maximum(np.abs(np.where(finite, reference, 0.0)), fmt.tiny)
     with np.errstate(divide="ignore", invalid="ignore"):
         share = np.where(error > 0, error / allowed, 0.0)
     share = np.where(mismatch, np.inf, share)
-    ulps = ulp_distance(subject, reference, fmt)
-    relative = error / np.maximum(np.abs(np.where(finite, reference, 0.0)), fmt.tiny)
 
     flat_share = share.ravel()
     count = min(worst, flat_share.size)

@@ -242,6 +242,19 @@ def test_comparison_counts_and_nonfinite_parity():
     assert data["share_max"] == "inf" and data["violations"] == 4 and "share" not in data
 
 
+def test_comparison_of_finite_values():
+    # Worked example (IEEE 754 binary32 spacing: ulp(2) = 2**-22, ulp(4..8) = 2**-21); every value
+    # finite, so no mask is needed and none is reported.
+    ref = np.array([1.0, 2.0, 0.0, 5.0])
+    sub = np.array([1.0, 2.5, 0.0, 5.0 + 2.0 ** -20])
+    result = compare("input", sub, ref, np.array([0.1, 0.1, 0.0, 2.0 ** -21]), "float32", model="m")
+    assert result.violations == 2 and result.nonfinite_mismatches == 0
+    assert result.max_abs == 0.5 and np.isclose(result.max_rel, 0.25)
+    assert result.max_ulps == 0.5 / 2.0 ** -22 and result.share_max == 5.0
+    assert [w.index for w in result.worst[:2]] == [(1,), (3,)] and result.worst[1].ulps == 2.0
+    assert result.share[2] == 0.0                           # equal values use none of a zero bound
+
+
 def test_comparison_share_and_percentile():
     ref = np.linspace(1, 2, 1000)
     sub = ref + np.linspace(0, 1e-3, 1000)
