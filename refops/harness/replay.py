@@ -65,9 +65,15 @@ def record_model(target: str, input_shapes, directory, *, dtype: str = "float32"
     return golden.write_bundle(directory, arrays=stored, manifest=manifest)
 
 
+def _bundle(directory) -> golden.Bundle:
+    """The bundle in ``directory`` (read and verified), or ``directory`` itself if already read."""
+    return directory if isinstance(directory, golden.Bundle) else golden.read_bundle(directory)
+
+
 def replay_model(target: str, directory, *, dtype: str | None = None, factor: float = 4.0) -> Report:
     """Run ``target`` on a recorded bundle and judge it against the trusted run's float64 results."""
-    bundle = golden.read_bundle(directory)
+    bundle = _bundle(directory)
+    directory = bundle.directory
     manifest = bundle.manifest
     dtype = dtype or manifest["formats"]["subject"]
     inputs = manifest["config"]["inputs"]
@@ -179,7 +185,8 @@ def replay_layer(target: str | Callable, directory, *, dtype: str | None = None,
     """Run the layer ``target`` on every case of a layer bundle and judge it against the
     references: ``factor`` times the largest share of the rounding bound the trusted run used
     (over all recorded cases, per tensor), times each case's bound."""
-    bundle = golden.read_bundle(directory)
+    bundle = _bundle(directory)
+    directory = bundle.directory
     config = bundle.manifest["config"]
     oracle = ops.get(config["op"])
     dtype = dtype or bundle.manifest["formats"]["subject"]
@@ -209,6 +216,6 @@ def replay_layer(target: str | Callable, directory, *, dtype: str | None = None,
 def replay(target: str | Callable, directory, *, dtype: str | None = None, factor: float = 4.0) -> Report:
     """Replay a model or a layer bundle, whichever ``directory`` holds (a layer bundle also takes
     a factory callable, run in this process)."""
-    if "op" in golden.read_bundle(directory).manifest["config"]:
-        return replay_layer(target, directory, dtype=dtype, factor=factor)
-    return replay_model(target, directory, dtype=dtype, factor=factor)
+    bundle = golden.read_bundle(directory)  # once: reading verifies every array's hash
+    replay_kind = replay_layer if "op" in bundle.manifest["config"] else replay_model
+    return replay_kind(target, bundle, dtype=dtype, factor=factor)

@@ -15,7 +15,7 @@ from typing import Callable
 import numpy as np
 
 from .runner import WorkerPool, parse_case_id, record_fault, target_name
-from .subject import load_factory, model_job, model_parameters, named_shapes
+from .subject import InputNameError, load_factory, model_job, model_parameters, named_shapes
 from .verdict import CaseResult, Report
 
 MODEL = ("central finite differences of the subject's own float64 forward, error estimated from "
@@ -31,11 +31,8 @@ def _one_case(factory: Callable, run: Callable, shapes, seed: int, index: int) -
     arrays = {name: rng.standard_normal(shape) for name, shape in shapes.items()}
     try:
         arrays.update(model_parameters(factory, int(rng.integers(2 ** 62)), inputs))
-    except ValueError as error:
-        if str(error).startswith("input_shapes:"):
-            raise  # the caller's input names, not a fault of the subject
-        verdict.status, verdict.message = "subject-error", f"{type(error).__name__}: {error}"
-        return verdict
+    except InputNameError:
+        raise  # the caller's input names, not a fault of the subject
     except Exception as error:  # the factory itself fails: a fault of the subject
         verdict.status, verdict.message = "subject-error", f"{type(error).__name__}: {error}"
         return verdict

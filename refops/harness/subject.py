@@ -27,6 +27,10 @@ class TargetError(ValueError):
     """A TARGET that cannot be loaded (exit status 2 on the command line)."""
 
 
+class InputNameError(ValueError):
+    """An input name that a model's parameter already has (the caller's mistake, not the model's)."""
+
+
 def load_factory(target: str) -> Callable:
     """The callable named by ``package.module:attr`` or ``path/to/file.py:attr``."""
     if not isinstance(target, str) or ":" not in target:
@@ -150,7 +154,7 @@ def model_parameters(factory: Callable, seed: int, inputs=()) -> dict[str, np.nd
     params = {name: p.detach().to(torch.float64).numpy().copy() for name, p in subject.named_parameters()}
     clash = sorted(set(inputs) & (set(params) | {"cotangent"}))
     if clash:
-        raise ValueError(f"input_shapes: the input name {clash[0]!r} is taken by the model's parameters "
+        raise InputNameError(f"input_shapes: the input name {clash[0]!r} is taken by the model's parameters "
                          f"(or the cotangent); name the input otherwise")
     return params
 
