@@ -65,6 +65,8 @@ PINS = {"padding_on_the_high_side": {"padding": 1, "padding_mode": "zeros"},
 
 @pytest.mark.parametrize("dtype", ["float32", "bfloat16"])
 def test_ports_replay_on_a_bundle_of_torchs_conv(tmp_path, dtype):
+    # Reference: torch's nn.Conv2d as the trusted backend, refops's conv2d oracle (itself checked
+    # against torch float64 autograd in tests/ops/test_conv.py) for the references.
     import torch_layers
     from refops.examples.denoiser import tile_conv
     bundle = record_layer(torch_layers.conv2d, "conv2d", tmp_path / "b", cases=10, seed=2, dtype=dtype)

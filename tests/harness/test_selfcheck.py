@@ -38,6 +38,8 @@ def test_right_backwards_pass(target):
     ("squared_distance_slipped", [(3, 5), (3, 5)], {"input1"}),  # no gradient for the second input
 ])
 def test_slipped_backwards_are_caught_on_the_wrong_tensors(target, shapes, wrong):
+    # Reference: central finite differences of the forward (Nocedal & Wright 2006, 8.1); the slips
+    # are written out beside each factory in no_oracle_layers.py, so the wrong tensors are known.
     report = check_self(f"{HERE}:{target}", shapes, cases=3)
     assert [c.status for c in report.cases] == ["failed"] * 3
     named = {f.split(" for ")[1].split(":")[0] for c in report.cases for f in c.findings}
